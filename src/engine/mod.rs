@@ -1,0 +1,368 @@
+//! The conv engine: what a conv stage computes, and the strategies that compute it.
+//!
+//! A [`ConvStage`] is plain data saying *what*: a bank, its op, pad mode, extent,
+//! stride and dilation. [`ConvStage::prepare`] checks it against an input size
+//! (with checked arithmetic, before anything is allocated) and turns the taps into
+//! f32 in correlation order (rotated by 180° for `convolve`). A [`Strategy`] says
+//! *how*; [`choose`] picks one, and every strategy must give the reference's result
+//! to within f32 rounding.
+//!
+//! For output channel n, input channels c, taps t (after rotation for `convolve`)
+//! and the padded input P:
+//!
+//! ```text
+//! out[n][y][x] = scale_n · Σ_c Σ_u Σ_v t_n[c][u][v] · P_c[y·s_y + u·d_y][x·s_x + v·d_x] + bias_n
+//! ```
+
+pub mod direct;
+pub mod reference;
+
+use std::fmt;
+use std::str::FromStr;
+
+use ndarray::Array3;
+
+use crate::border::PadMode;
+use crate::error::Error;
+use crate::geometry::{axis_geometry, Axis, AxisGeometry, Extent};
+use crate::kernel::{Bank, Op};
+
+/// The options of a conv stage other than its bank.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ConvOptions {
+    /// Override of the bank's op; `None` keeps what the bank declares.
+    pub op: Option<Op>,
+    /// What stands outside the image.
+    pub pad: PadMode,
+    /// How much padding.
+    pub extent: Extent,
+    /// Stride (rows, columns).
+    pub stride: (usize, usize),
+    /// Dilation (rows, columns).
+    pub dilation: (usize, usize),
+}
+
+impl Default for ConvOptions {
+    fn default() -> Self {
+        ConvOptions {
+            op: None,
+            pad: PadMode::Zero,
+            extent: Extent::Same,
+            stride: (1, 1),
+            dilation: (1, 1),
+        }
+    }
+}
+
+/// One conv stage: a bank and how it slides.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ConvStage {
+    /// The kernels; kernel n makes output channel n.
+    pub bank: Bank,
+    /// Pad, extent, stride, dilation, op.
+    pub options: ConvOptions,
+}
+
+/// Geometry of one kernel over one input size.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Geometry {
+    /// Along the rows (height).
+    pub rows: AxisGeometry,
+    /// Along the columns (width).
+    pub cols: AxisGeometry,
+}
+
+/// One kernel ready for a strategy: f32 taps in correlation order.
+#[derive(Debug, Clone)]
+pub struct PreparedKernel {
+    /// Tap rows.
+    pub rows: usize,
+    /// Tap columns.
+    pub cols: usize,
+    /// `channels × rows × cols` taps, correlation order (already rotated for `convolve`).
+    pub taps: Vec<f32>,
+    /// Multiplies the sum.
+    pub scale: f32,
+    /// Added after scaling.
+    pub bias: f32,
+    /// Padding and output size for this kernel.
+    pub geometry: Geometry,
+}
+
+/// A conv stage checked against an input shape.
+#[derive(Debug, Clone)]
+pub struct PreparedStage {
+    /// Input channels.
+    pub channels: usize,
+    /// Input height.
+    pub height: usize,
+    /// Input width.
+    pub width: usize,
+    /// Output height (the same for every kernel).
+    pub out_height: usize,
+    /// Output width.
+    pub out_width: usize,
+    /// Pad mode.
+    pub pad: PadMode,
+    /// The op that was applied when preparing the taps.
+    pub op: Op,
+    /// The kernels.
+    pub kernels: Vec<PreparedKernel>,
+}
+
+impl PreparedStage {
+    /// Number of output values, checked.
+    pub fn output_len(&self) -> Result<usize, Error> {
+        self.kernels
+            .len()
+            .checked_mul(self.out_height)
+            .and_then(|v| v.checked_mul(self.out_width))
+            .ok_or_else(|| Error::Geometry("output size overflows".into()))
+    }
+
+    /// Multiply-adds of the whole stage.
+    pub fn multiply_adds(&self) -> u128 {
+        let outs = (self.out_height * self.out_width) as u128;
+        self.kernels
+            .iter()
+            .map(|k| outs * (self.channels * k.rows * k.cols) as u128)
+            .sum()
+    }
+}
+
+impl ConvStage {
+    /// The op in force: the override, else the bank's.
+    pub fn op(&self) -> Op {
+        self.options.op.unwrap_or(self.bank.op)
+    }
+
+    /// The geometry of kernel `n` over an input of `height × width`.
+    pub fn kernel_geometry(
+        &self,
+        n: usize,
+        height: usize,
+        width: usize,
+    ) -> Result<Geometry, Error> {
+        let k = &self.bank.kernels[n];
+        let o = &self.options;
+        let ctx =
+            |e: Error| Error::Geometry(format!("kernel '{}' ({}×{}): {e}", k.name, k.rows, k.cols));
+        Ok(Geometry {
+            rows: axis_geometry(
+                Axis::Rows,
+                height,
+                k.rows,
+                o.stride.0,
+                o.dilation.0,
+                o.extent,
+            )
+            .map_err(ctx)?,
+            cols: axis_geometry(
+                Axis::Cols,
+                width,
+                k.cols,
+                o.stride.1,
+                o.dilation.1,
+                o.extent,
+            )
+            .map_err(ctx)?,
+        })
+    }
+
+    /// Checks the stage against an input of `channels × height × width` and prepares
+    /// f32 taps. Fails on a channel mismatch, impossible geometry, or kernels whose
+    /// output sizes differ.
+    pub fn prepare(
+        &self,
+        channels: usize,
+        height: usize,
+        width: usize,
+    ) -> Result<PreparedStage, Error> {
+        self.bank.validate()?;
+        if self.bank.channels() != channels {
+            return Err(Error::Stage(format!(
+                "bank '{}' has kernels with {} plane(s) but its input has {channels} channel(s)",
+                self.bank.name,
+                self.bank.channels()
+            )));
+        }
+        let op = self.op();
+        let mut kernels = Vec::with_capacity(self.bank.kernels.len());
+        for (n, k) in self.bank.kernels.iter().enumerate() {
+            let geometry = self.kernel_geometry(n, height, width)?;
+            let taps = (0..k.channels())
+                .flat_map(|c| match op {
+                    Op::Correlate => k.planes[c].clone(),
+                    Op::Convolve => k.rotated_plane(c),
+                })
+                .map(|v| v as f32)
+                .collect();
+            kernels.push(PreparedKernel {
+                rows: k.rows,
+                cols: k.cols,
+                taps,
+                scale: k.scale as f32,
+                bias: k.bias as f32,
+                geometry,
+            });
+        }
+        let g0 = kernels[0].geometry;
+        if let Some((n, k)) = kernels.iter().enumerate().find(|(_, k)| {
+            (k.geometry.rows.output, k.geometry.cols.output) != (g0.rows.output, g0.cols.output)
+        }) {
+            return Err(Error::Geometry(format!(
+                "bank '{}': kernel '{}' gives {}×{} outputs but '{}' gives {}×{} under extent {}; \
+                 use extent same, or kernels of one size",
+                self.bank.name,
+                self.bank.kernels[n].name,
+                k.geometry.cols.output,
+                k.geometry.rows.output,
+                self.bank.kernels[0].name,
+                g0.cols.output,
+                g0.rows.output,
+                self.options.extent
+            )));
+        }
+        let st = PreparedStage {
+            channels,
+            height,
+            width,
+            out_height: g0.rows.output,
+            out_width: g0.cols.output,
+            pad: self.options.pad,
+            op,
+            kernels,
+        };
+        st.output_len()?;
+        Ok(st)
+    }
+}
+
+/// Which strategy runs a conv stage.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Engine {
+    /// Let the planner choose.
+    Auto,
+    /// Per-pixel sums with a border lookup per tap; slow, obviously right.
+    Reference,
+    /// Padded rows, whole-row multiply-adds per tap.
+    Direct,
+}
+
+impl Engine {
+    /// Name on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            Engine::Auto => "auto",
+            Engine::Reference => "reference",
+            Engine::Direct => "direct",
+        }
+    }
+}
+
+impl fmt::Display for Engine {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+impl FromStr for Engine {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "auto" => Ok(Engine::Auto),
+            "reference" => Ok(Engine::Reference),
+            "direct" => Ok(Engine::Direct),
+            other => Err(format!(
+                "unknown engine '{other}'; expected auto, reference or direct"
+            )),
+        }
+    }
+}
+
+/// A way to compute a prepared conv stage.
+pub trait Strategy: Sync {
+    /// Its name, as `--engine` takes it.
+    fn name(&self) -> &'static str;
+    /// Computes the stage. `input` is `channels × height × width` row-major;
+    /// `out` has `kernels × out_height × out_width` entries and is overwritten.
+    fn run(&self, stage: &PreparedStage, input: &[f32], out: &mut [f32]);
+}
+
+/// The planner's decision for one stage.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Choice {
+    /// The strategy that will run.
+    pub engine: Engine,
+    /// Why, in a few words.
+    pub reason: String,
+}
+
+/// Picks the strategy for a stage; a forced engine is taken as asked.
+pub fn choose(_stage: &PreparedStage, requested: Engine) -> Choice {
+    match requested {
+        Engine::Auto => Choice {
+            engine: Engine::Direct,
+            reason: "direct is the only fast strategy built so far".into(),
+        },
+        forced => Choice {
+            engine: forced,
+            reason: "forced by --engine".into(),
+        },
+    }
+}
+
+fn strategy(engine: Engine) -> &'static dyn Strategy {
+    match engine {
+        Engine::Reference => &reference::Reference,
+        Engine::Direct | Engine::Auto => &direct::Direct,
+    }
+}
+
+/// Runs a conv stage over a `C × H × W` input with the chosen engine.
+pub fn run_conv(
+    stage: &ConvStage,
+    input: &Array3<f32>,
+    engine: Engine,
+) -> Result<Array3<f32>, Error> {
+    let (c, h, w) = input.dim();
+    let prepared = stage.prepare(c, h, w)?;
+    run_prepared(&prepared, input, engine)
+}
+
+/// Runs an already prepared stage (the input must have the prepared shape).
+pub fn run_prepared(
+    prepared: &PreparedStage,
+    input: &Array3<f32>,
+    engine: Engine,
+) -> Result<Array3<f32>, Error> {
+    let (c, h, w) = input.dim();
+    if (c, h, w) != (prepared.channels, prepared.height, prepared.width) {
+        return Err(Error::Stage(format!(
+            "stage prepared for {}×{}×{} but given {c}×{h}×{w}",
+            prepared.channels, prepared.height, prepared.width
+        )));
+    }
+    let mut out = vec![0.0f32; prepared.output_len()?];
+    let choice = choose(prepared, engine);
+    let contiguous;
+    let data = match input.as_slice() {
+        Some(s) => s,
+        None => {
+            contiguous = input.as_standard_layout().into_owned();
+            contiguous
+                .as_slice()
+                .expect("standard layout is contiguous")
+        }
+    };
+    strategy(choice.engine).run(prepared, data, &mut out);
+    Array3::from_shape_vec(
+        (
+            prepared.kernels.len(),
+            prepared.out_height,
+            prepared.out_width,
+        ),
+        out,
+    )
+    .map_err(|e| Error::Stage(format!("output shape: {e}")))
+}

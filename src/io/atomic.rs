@@ -1,0 +1,32 @@
+//! Files appear whole or not at all: each is written under a temporary name in its
+//! final folder and renamed into place (a rename within one folder is atomic on
+//! POSIX file systems).
+
+use std::io::{BufWriter, Write};
+use std::path::Path;
+
+use crate::error::Error;
+
+/// Writes `bytes` produced by `fill` to `path` atomically (temporary file in the
+/// same folder, then rename); on failure no file is left at `path`.
+pub fn write_atomic(
+    path: &Path,
+    fill: impl FnOnce(&mut dyn Write) -> std::io::Result<()>,
+) -> Result<(), Error> {
+    let dir = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let tmp = tempfile::Builder::new()
+        .prefix(".tapmap-")
+        .suffix(".part")
+        .tempfile_in(dir)
+        .map_err(|e| Error::io(dir, e))?;
+    {
+        let mut w = BufWriter::new(tmp.as_file());
+        fill(&mut w).map_err(|e| Error::io(path, e))?;
+        w.flush().map_err(|e| Error::io(path, e))?;
+    }
+    tmp.persist(path).map_err(|e| Error::io(path, e.error))?;
+    Ok(())
+}

@@ -1,0 +1,5 @@
+//! Image input and map output.
+
+pub mod atomic;
+pub mod npy;
+pub mod read;

@@ -1,0 +1,258 @@
+//! Bank files: our TOML schema, read and written.
+//!
+//! ```toml
+//! name = "line-a-edges"          # the bank's name
+//! op = "correlate"               # how the taps are meant: correlate | convolve
+//! description = "free text"      # optional
+//!
+//! [[kernel]]                     # one table per output channel, in order
+//! name = "sobel-x"
+//! taps = [[-1, 0, 1], [-2, 0, 2], [-1, 0, 1]]   # one plane, rows top to bottom
+//! scale = 1.0                    # optional, default 1
+//! bias = 0.0                     # optional, default 0
+//!
+//! [[kernel]]
+//! name = "colour-edge"
+//! planes = [ [[..]], [[..]], [[..]] ]   # instead of taps: one plane per input channel
+//!
+//! [[kernel]]
+//! name = "blur"
+//! family = "gaussian"            # instead of taps: a built-in family …
+//! params = { sigma = 1.5 }       # … with its parameters
+//! ```
+//!
+//! Unknown keys are refused. Writing keeps a family kernel as family and params,
+//! so that `read(write(bank)) == bank` exactly (taps are f64, which TOML holds
+//! without loss).
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+use toml::Spanned;
+
+use crate::error::Error;
+use crate::kernel::{plane_from_rows, Bank, FamilySpec, Kernel, Op};
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct FileIn {
+    name: Option<String>,
+    op: Option<Op>,
+    description: Option<String>,
+    #[serde(default)]
+    kernel: Vec<Spanned<KernelIn>>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct KernelIn {
+    name: Option<String>,
+    taps: Option<Spanned<Vec<Vec<f64>>>>,
+    planes: Option<Spanned<Vec<Vec<Vec<f64>>>>>,
+    family: Option<String>,
+    params: Option<BTreeMap<String, f64>>,
+    scale: Option<Spanned<f64>>,
+    bias: Option<Spanned<f64>>,
+}
+
+#[derive(Serialize)]
+struct FileOut<'a> {
+    name: &'a str,
+    op: Op,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    description: Option<&'a str>,
+    kernel: Vec<KernelOut<'a>>,
+}
+
+#[derive(Serialize)]
+struct KernelOut<'a> {
+    name: &'a str,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    family: Option<&'a str>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    params: Option<&'a BTreeMap<String, f64>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    taps: Option<Vec<Vec<f64>>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    planes: Option<Vec<Vec<Vec<f64>>>>,
+    scale: f64,
+    bias: f64,
+}
+
+/// 1-based line and column of a byte offset.
+fn line_col(text: &str, offset: usize) -> (usize, usize) {
+    let before = &text[..offset.min(text.len())];
+    let line = before.matches('\n').count() + 1;
+    let col = before
+        .rfind('\n')
+        .map_or(before.len(), |i| before.len() - i - 1)
+        + 1;
+    (line, col)
+}
+
+/// Parses a bank from TOML text; `origin` names the file in messages.
+pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
+    let err = |message: String| Error::BankFile {
+        path: origin.to_path_buf(),
+        message,
+    };
+    let at = |span: std::ops::Range<usize>, message: String| {
+        let (l, c) = line_col(text, span.start);
+        err(format!("line {l}, column {c}: {message}"))
+    };
+    let file: FileIn = toml::from_str(text).map_err(|e| {
+        let msg = match e.span() {
+            Some(s) => {
+                let (l, c) = line_col(text, s.start);
+                format!("line {l}, column {c}: {}", e.message())
+            }
+            None => e.message().to_string(),
+        };
+        err(msg)
+    })?;
+    let stem = origin.file_stem().map(|s| s.to_string_lossy().into_owned());
+    let name = file.name.or(stem).unwrap_or_else(|| "bank".into());
+    if file.kernel.is_empty() {
+        return Err(err(
+            "no [[kernel]] tables: a bank needs at least one kernel".into(),
+        ));
+    }
+    let mut kernels = Vec::with_capacity(file.kernel.len());
+    for (i, sk) in file.kernel.into_iter().enumerate() {
+        let span = sk.span();
+        let k = sk.into_inner();
+        let kname = k.name.clone().unwrap_or_else(|| match &k.family {
+            Some(f) => FamilySpec {
+                family: f.clone(),
+                params: k.params.clone().unwrap_or_default(),
+            }
+            .to_string(),
+            None => format!("k{i}"),
+        });
+        let sources = [k.taps.is_some(), k.planes.is_some(), k.family.is_some()];
+        if sources.iter().filter(|b| **b).count() != 1 {
+            return Err(at(
+                span,
+                format!("kernel '{kname}' needs exactly one of taps, planes or family"),
+            ));
+        }
+        if k.params.is_some() && k.family.is_none() {
+            return Err(at(
+                span,
+                format!("kernel '{kname}' has params but no family"),
+            ));
+        }
+        let mut kernel = if let Some(t) = k.taps {
+            let s = t.span();
+            Kernel::from_rows(&kname, t.get_ref()).map_err(|e| at(s, e.to_string()))?
+        } else if let Some(ps) = k.planes {
+            let s = ps.span();
+            let ps = ps.into_inner();
+            if ps.is_empty() {
+                return Err(at(s, format!("kernel '{kname}' has an empty planes list")));
+            }
+            let mut planes = Vec::with_capacity(ps.len());
+            let mut shape = None;
+            for (c, rows) in ps.iter().enumerate() {
+                let (r, w, p) = plane_from_rows(&format!("{kname}' plane '{c}"), rows)
+                    .map_err(|e| at(s.clone(), e.to_string()))?;
+                if *shape.get_or_insert((r, w)) != (r, w) {
+                    let (r0, w0) = shape.unwrap_or_default();
+                    return Err(at(
+                        s,
+                        format!("kernel '{kname}': plane {c} is {r}×{w} but plane 0 is {r0}×{w0}"),
+                    ));
+                }
+                planes.push(p);
+            }
+            let (rows, cols) = shape.unwrap_or_default();
+            Kernel {
+                name: kname.clone(),
+                rows,
+                cols,
+                planes,
+                scale: 1.0,
+                bias: 0.0,
+                origin: None,
+            }
+        } else {
+            let spec = FamilySpec {
+                family: k.family.unwrap_or_default(),
+                params: k.params.unwrap_or_default(),
+            };
+            spec.build(Some(&kname))
+                .map_err(|e| at(span.clone(), e.to_string()))?
+        };
+        for (field, v, target) in [
+            ("scale", k.scale, &mut kernel.scale),
+            ("bias", k.bias, &mut kernel.bias),
+        ] {
+            if let Some(v) = v {
+                if !v.get_ref().is_finite() {
+                    return Err(at(
+                        v.span(),
+                        format!(
+                            "kernel '{kname}': {field} must be finite, got {}",
+                            v.get_ref()
+                        ),
+                    ));
+                }
+                *target = *v.get_ref();
+            }
+        }
+        kernels.push(kernel);
+    }
+    let bank = Bank {
+        name,
+        op: file.op.unwrap_or(Op::Correlate),
+        description: file.description,
+        kernels,
+    };
+    bank.validate().map_err(|e| err(e.to_string()))?;
+    Ok(bank)
+}
+
+/// Reads a bank file.
+pub fn read_bank(path: &Path) -> Result<Bank, Error> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    parse_bank(&text, path)
+}
+
+/// Writes a bank as TOML text in our schema.
+pub fn bank_to_toml(bank: &Bank) -> Result<String, Error> {
+    let kernel = bank
+        .kernels
+        .iter()
+        .map(|k| {
+            let (family, params, taps, planes) = match &k.origin {
+                Some(spec) => (Some(spec.family.as_str()), Some(&spec.params), None, None),
+                None if k.channels() == 1 => (None, None, Some(k.plane_rows(0)), None),
+                None => (
+                    None,
+                    None,
+                    None,
+                    Some((0..k.channels()).map(|c| k.plane_rows(c)).collect()),
+                ),
+            };
+            KernelOut {
+                name: &k.name,
+                family,
+                params,
+                taps,
+                planes,
+                scale: k.scale,
+                bias: k.bias,
+            }
+        })
+        .collect();
+    let out = FileOut {
+        name: &bank.name,
+        op: bank.op,
+        description: bank.description.as_deref(),
+        kernel,
+    };
+    let body =
+        toml::to_string(&out).map_err(|e| Error::Kernel(format!("cannot write bank: {e}")))?;
+    Ok(format!("# tapmap bank file\n{body}"))
+}

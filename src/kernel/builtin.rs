@@ -1,0 +1,67 @@
+//! Resolving `--bank NAME|FILE`: a bank file, a shipped bank, or built-in family
+//! specs joined with `+` (`sobel-x+sobel-y`, `gaussian:sigma=2`).
+//!
+//! The shipped banks are the files in the repository's `kernels/` folder, compiled
+//! into the binary so they work wherever the binary is copied.
+
+use std::path::Path;
+
+use crate::error::Error;
+use crate::kernel::bankfile::{parse_bank, read_bank};
+use crate::kernel::families::{near_names_hint, FamilySpec, FAMILIES};
+use crate::kernel::{Bank, Op};
+
+/// Shipped bank files: (name, TOML text).
+pub static SHIPPED_BANKS: &[(&str, &str)] = &[
+    ("edges", include_str!("../../kernels/edges.toml")),
+    ("gradients", include_str!("../../kernels/gradients.toml")),
+    ("smooth", include_str!("../../kernels/smooth.toml")),
+    ("blobs", include_str!("../../kernels/blobs.toml")),
+    ("texture", include_str!("../../kernels/texture.toml")),
+];
+
+/// A shipped bank by name.
+pub fn shipped_bank(name: &str) -> Option<Result<Bank, Error>> {
+    SHIPPED_BANKS
+        .iter()
+        .find(|(n, _)| *n == name)
+        .map(|(n, text)| parse_bank(text, Path::new(&format!("kernels/{n}.toml"))))
+}
+
+/// Resolves a `--bank` argument: an existing file (or any name ending in `.toml`),
+/// a shipped bank, or `+`-joined family specs (built-ins declare `correlate`).
+pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
+    let path = Path::new(arg);
+    if path.is_file() || arg.ends_with(".toml") {
+        return read_bank(path);
+    }
+    if let Some(b) = shipped_bank(arg) {
+        return b;
+    }
+    let specs: Vec<&str> = arg.split('+').collect();
+    let mut kernels = Vec::with_capacity(specs.len());
+    for s in specs {
+        let spec = FamilySpec::parse(s)?;
+        if crate::kernel::families::find(&spec.family).is_none() {
+            let names = FAMILIES
+                .iter()
+                .map(|f| f.name)
+                .chain(SHIPPED_BANKS.iter().map(|(n, _)| *n));
+            return Err(Error::Kernel(format!(
+                "'{}' is not a bank file, a shipped bank or a kernel family{} \
+                 (`tapmap bank list` shows them all)",
+                spec.family,
+                near_names_hint(&spec.family, names)
+            )));
+        }
+        kernels.push(spec.build(Some(s))?);
+    }
+    let bank = Bank {
+        name: arg.to_string(),
+        op: Op::Correlate,
+        description: None,
+        kernels,
+    };
+    bank.validate()?;
+    Ok(bank)
+}

@@ -1,0 +1,240 @@
+//! Kernels and banks: the taps, how they are meant (`op`), and where they came from.
+//!
+//! A [`Kernel`] is a k_h × k_w array of taps, with one plane per input channel
+//! (one plane for grey input), a `scale` that multiplies the sum and a `bias`
+//! added after it:
+//!
+//! ```text
+//! out(y, x) = scale · Σ_c Σ_(u,v) t_c(u, v) · in_c(y·s + u·d, x·s + v·d) + bias
+//! ```
+//!
+//! for `correlate`; `convolve` first rotates every plane by 180°.
+//! A [`Bank`] is an ordered, named list of kernels; kernel `n` makes output channel `n`.
+//! Taps are kept in f64 so that bank files round-trip exactly; the engine works in f32.
+
+pub mod analysis;
+pub mod bankfile;
+pub mod builtin;
+pub mod families;
+
+use std::fmt;
+use std::str::FromStr;
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::Error;
+pub use families::FamilySpec;
+
+/// How a bank's taps are applied.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Op {
+    /// True convolution: taps rotated by 180° before the sliding dot product.
+    Convolve,
+    /// Sliding dot product with the taps as written (what CNN layers compute).
+    Correlate,
+}
+
+impl Op {
+    /// The name used on the command line and in files.
+    pub fn name(self) -> &'static str {
+        match self {
+            Op::Convolve => "convolve",
+            Op::Correlate => "correlate",
+        }
+    }
+}
+
+impl fmt::Display for Op {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+impl FromStr for Op {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "convolve" => Ok(Op::Convolve),
+            "correlate" => Ok(Op::Correlate),
+            other => Err(format!(
+                "unknown op '{other}'; expected convolve or correlate"
+            )),
+        }
+    }
+}
+
+/// One kernel: taps (one plane per input channel), scale, bias and name.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Kernel {
+    /// Name of the output channel this kernel makes.
+    pub name: String,
+    /// Rows of taps (k_h).
+    pub rows: usize,
+    /// Columns of taps (k_w).
+    pub cols: usize,
+    /// One row-major `rows × cols` plane per input channel.
+    pub planes: Vec<Vec<f64>>,
+    /// Multiplies the weighted sum.
+    pub scale: f64,
+    /// Added after scaling.
+    pub bias: f64,
+    /// The built-in family and parameters this kernel was made from, if any.
+    pub origin: Option<FamilySpec>,
+}
+
+impl Kernel {
+    /// A one-plane kernel from row-major taps; checks shape and finiteness.
+    pub fn from_rows(name: &str, rows: &[Vec<f64>]) -> Result<Kernel, Error> {
+        let (r, c, plane) = plane_from_rows(name, rows)?;
+        Ok(Kernel {
+            name: name.to_string(),
+            rows: r,
+            cols: c,
+            planes: vec![plane],
+            scale: 1.0,
+            bias: 0.0,
+            origin: None,
+        })
+    }
+
+    /// Number of input channels this kernel expects.
+    pub fn channels(&self) -> usize {
+        self.planes.len()
+    }
+
+    /// Tap `(row, col)` of plane `c`.
+    pub fn tap(&self, c: usize, row: usize, col: usize) -> f64 {
+        self.planes[c][row * self.cols + col]
+    }
+
+    /// Plane `c` as a vector of rows.
+    pub fn plane_rows(&self, c: usize) -> Vec<Vec<f64>> {
+        self.planes[c]
+            .chunks(self.cols)
+            .map(|r| r.to_vec())
+            .collect()
+    }
+
+    /// Plane `c` rotated by 180° (row-major), as convolution applies it.
+    pub fn rotated_plane(&self, c: usize) -> Vec<f64> {
+        self.planes[c].iter().rev().copied().collect()
+    }
+
+    /// Checks the invariants every kernel must hold: at least one tap and one plane,
+    /// planes of the stated size, finite taps, scale and bias.
+    pub fn validate(&self) -> Result<(), Error> {
+        let n = &self.name;
+        if self.rows == 0 || self.cols == 0 {
+            return Err(Error::Kernel(format!("kernel '{n}' has no taps")));
+        }
+        if self.planes.is_empty() {
+            return Err(Error::Kernel(format!("kernel '{n}' has no planes")));
+        }
+        for (c, p) in self.planes.iter().enumerate() {
+            if p.len() != self.rows * self.cols {
+                return Err(Error::Kernel(format!(
+                    "kernel '{n}' plane {c} has {} taps, expected {}×{}",
+                    p.len(),
+                    self.rows,
+                    self.cols
+                )));
+            }
+            if let Some(i) = p.iter().position(|v| !v.is_finite()) {
+                return Err(Error::Kernel(format!(
+                    "kernel '{n}' plane {c} has a non-finite tap {} at row {}, column {}",
+                    p[i],
+                    i / self.cols,
+                    i % self.cols
+                )));
+            }
+        }
+        if !self.scale.is_finite() || !self.bias.is_finite() {
+            return Err(Error::Kernel(format!(
+                "kernel '{n}' has a non-finite scale ({}) or bias ({})",
+                self.scale, self.bias
+            )));
+        }
+        Ok(())
+    }
+}
+
+/// Turns rows of taps into (rows, cols, row-major plane), refusing empty, ragged
+/// and non-finite input.
+pub fn plane_from_rows(name: &str, rows: &[Vec<f64>]) -> Result<(usize, usize, Vec<f64>), Error> {
+    let r = rows.len();
+    let c = rows.first().map_or(0, Vec::len);
+    if r == 0 || c == 0 {
+        return Err(Error::Kernel(format!("kernel '{name}' has empty taps")));
+    }
+    if let Some((i, row)) = rows.iter().enumerate().find(|(_, row)| row.len() != c) {
+        return Err(Error::Kernel(format!(
+            "kernel '{name}' has ragged taps: row 0 has {c} values but row {i} has {}",
+            row.len()
+        )));
+    }
+    let plane: Vec<f64> = rows.iter().flatten().copied().collect();
+    if let Some(i) = plane.iter().position(|v| !v.is_finite()) {
+        return Err(Error::Kernel(format!(
+            "kernel '{name}' has a non-finite tap {} at row {}, column {}",
+            plane[i],
+            i / c,
+            i % c
+        )));
+    }
+    Ok((r, c, plane))
+}
+
+/// An ordered, named set of kernels, with the op its taps are meant for.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Bank {
+    /// The bank's name.
+    pub name: String,
+    /// How the taps are meant.
+    pub op: Op,
+    /// Free text.
+    pub description: Option<String>,
+    /// The kernels; kernel `n` makes output channel `n`.
+    pub kernels: Vec<Kernel>,
+}
+
+impl Bank {
+    /// Checks every kernel, that there is at least one, that names are unique and
+    /// that all kernels take the same number of input channels.
+    pub fn validate(&self) -> Result<(), Error> {
+        if self.kernels.is_empty() {
+            return Err(Error::Kernel(format!(
+                "bank '{}' has no kernels",
+                self.name
+            )));
+        }
+        for k in &self.kernels {
+            k.validate()?;
+        }
+        let c0 = self.kernels[0].channels();
+        if let Some(k) = self.kernels.iter().find(|k| k.channels() != c0) {
+            return Err(Error::Kernel(format!(
+                "bank '{}': kernel '{}' has {} planes but '{}' has {c0}; all kernels of a bank \
+                 must take the same input channels",
+                self.name,
+                k.name,
+                k.channels(),
+                self.kernels[0].name
+            )));
+        }
+        let mut names: Vec<&str> = self.kernels.iter().map(|k| k.name.as_str()).collect();
+        names.sort_unstable();
+        if let Some(w) = names.windows(2).find(|w| w[0] == w[1]) {
+            return Err(Error::Kernel(format!(
+                "bank '{}' has two kernels named '{}'; names label output channels and must differ",
+                self.name, w[0]
+            )));
+        }
+        Ok(())
+    }
+
+    /// Input channels every kernel expects.
+    pub fn channels(&self) -> usize {
+        self.kernels.first().map_or(0, Kernel::channels)
+    }
+}

@@ -1,0 +1,10 @@
+//! Stages and recipes: what is computed, in order (conv, act, pool), and the
+//! size plan of a recipe for a given input.
+
+pub mod act;
+pub mod pool;
+pub mod recipe;
+
+pub use act::Activation;
+pub use pool::{Pool, PoolKind, PoolWindow};
+pub use recipe::{Recipe, Stage, StagePlan};

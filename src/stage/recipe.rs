@@ -1,0 +1,208 @@
+//! A recipe: stages applied in order to a `C × H × W` input. Output channel
+//! names come from the last conv stage's kernels.
+//!
+//! [`Recipe::plan`] walks the stages over an input size without touching pixels:
+//! each stage's output size, padding, receptive field (r_out = r_in + (k_eff − 1)·j_in,
+//! j_out = j_in·s; Dumoulin & Visin 2016), multiply-adds, the input rows and
+//! columns the stride leaves unused at the far edge, and the engine choice.
+//! Running uses the same checks, so a recipe that plans fails nowhere on size.
+
+use ndarray::Array3;
+
+use crate::engine::{choose, run_prepared, Choice, ConvStage, Engine};
+use crate::error::Error;
+use crate::geometry::ReceptiveField;
+use crate::stage::{Activation, Pool};
+
+/// One step of a recipe.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Stage {
+    /// A bank slid over the input.
+    Conv(ConvStage),
+    /// An element-wise activation.
+    Act(Activation),
+    /// Max or mean pooling.
+    Pool(Pool),
+}
+
+/// Stages in order.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Recipe {
+    /// The stages.
+    pub stages: Vec<Stage>,
+}
+
+/// What one stage does to a given input size.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StagePlan {
+    /// `conv`, `act` or `pool`.
+    pub kind: &'static str,
+    /// One-line description of the stage.
+    pub what: String,
+    /// Input (channels, height, width).
+    pub input: (usize, usize, usize),
+    /// Output (channels, height, width).
+    pub output: (usize, usize, usize),
+    /// Padding (top, bottom, left, right), for conv stages.
+    pub padding: Option<(usize, usize, usize, usize)>,
+    /// Receptive field after this stage: (rows, cols).
+    pub field: (ReceptiveField, ReceptiveField),
+    /// Multiply-adds (conv), comparisons or additions (pool), or operations (act).
+    pub operations: u128,
+    /// Input rows and columns (not padding) at the far edge that no output sees.
+    pub unused: (usize, usize),
+    /// The engine choice, for conv stages.
+    pub engine: Option<Choice>,
+}
+
+impl Recipe {
+    /// Plans the recipe over an input of `channels × height × width`.
+    pub fn plan(
+        &self,
+        channels: usize,
+        height: usize,
+        width: usize,
+        engine: Engine,
+    ) -> Result<Vec<StagePlan>, Error> {
+        let mut shape = (channels, height, width);
+        let mut field = (ReceptiveField::default(), ReceptiveField::default());
+        let mut plans = Vec::with_capacity(self.stages.len());
+        for (i, stage) in self.stages.iter().enumerate() {
+            let ctx =
+                |e: Error| Error::Stage(format!("stage {} ({}): {e}", i + 1, stage_kind(stage)));
+            let plan = match stage {
+                Stage::Conv(conv) => {
+                    let p = conv.prepare(shape.0, shape.1, shape.2).map_err(ctx)?;
+                    // The widest kernel sets the receptive field and the unused margin.
+                    let widest = p
+                        .kernels
+                        .iter()
+                        .max_by_key(|k| {
+                            k.geometry.rows.effective_kernel() * k.geometry.cols.effective_kernel()
+                        })
+                        .expect("a prepared stage has kernels");
+                    let (gr, gc) = (widest.geometry.rows, widest.geometry.cols);
+                    let o = &conv.options;
+                    let what = format!(
+                        "bank {} ({} kernels), {}, pad {}, extent {}, stride {}, dilation {}",
+                        conv.bank.name,
+                        conv.bank.kernels.len(),
+                        conv.op(),
+                        o.pad,
+                        o.extent,
+                        pair(o.stride),
+                        pair(o.dilation)
+                    );
+                    field = (
+                        field.0.then(gr.effective_kernel(), gr.stride),
+                        field.1.then(gc.effective_kernel(), gc.stride),
+                    );
+                    StagePlan {
+                        kind: "conv",
+                        what,
+                        input: shape,
+                        output: (p.kernels.len(), p.out_height, p.out_width),
+                        padding: Some((gr.pad_before, gr.pad_after, gc.pad_before, gc.pad_after)),
+                        field,
+                        operations: p.multiply_adds(),
+                        unused: (gr.unused_input(), gc.unused_input()),
+                        engine: Some(choose(&p, engine)),
+                    }
+                }
+                Stage::Act(a) => StagePlan {
+                    kind: "act",
+                    what: a.to_string(),
+                    input: shape,
+                    output: shape,
+                    padding: None,
+                    field,
+                    operations: (shape.0 * shape.1 * shape.2) as u128,
+                    unused: (0, 0),
+                    engine: None,
+                },
+                Stage::Pool(pool) => {
+                    let (oh, ow) = pool.output_size(shape.1, shape.2).map_err(ctx)?;
+                    let ((kh, kw), (sh, sw)) = pool.window_over(shape.1, shape.2);
+                    field = (field.0.then(kh, sh), field.1.then(kw, sw));
+                    StagePlan {
+                        kind: "pool",
+                        what: pool.to_string(),
+                        input: shape,
+                        output: (shape.0, oh, ow),
+                        padding: None,
+                        field,
+                        operations: (shape.0 * oh * ow * kh * kw) as u128,
+                        unused: (
+                            shape.1 - ((oh - 1) * sh + kh),
+                            shape.2 - ((ow - 1) * sw + kw),
+                        ),
+                        engine: None,
+                    }
+                }
+            };
+            shape = plan.output;
+            plans.push(plan);
+        }
+        Ok(plans)
+    }
+
+    /// Runs every stage over `input` (`C × H × W`), returning the final maps.
+    pub fn run(&self, input: Array3<f32>, engine: Engine) -> Result<Array3<f32>, Error> {
+        let mut x = input;
+        for (i, stage) in self.stages.iter().enumerate() {
+            let ctx =
+                |e: Error| Error::Stage(format!("stage {} ({}): {e}", i + 1, stage_kind(stage)));
+            x = match stage {
+                Stage::Conv(conv) => {
+                    let (c, h, w) = x.dim();
+                    let p = conv.prepare(c, h, w).map_err(ctx)?;
+                    run_prepared(&p, &x, engine).map_err(ctx)?
+                }
+                Stage::Act(a) => {
+                    if let Some(s) = x.as_slice_mut() {
+                        a.apply(s);
+                    } else {
+                        x.mapv_inplace(|v| {
+                            let mut t = [v];
+                            a.apply(&mut t);
+                            t[0]
+                        });
+                    }
+                    x
+                }
+                Stage::Pool(p) => p.apply(&x).map_err(ctx)?,
+            };
+        }
+        Ok(x)
+    }
+
+    /// Names of the output channels: the last conv stage's kernel names, or
+    /// `input` numbered when there is no conv stage.
+    pub fn channel_names(&self, input_channels: usize) -> Vec<String> {
+        self.stages
+            .iter()
+            .rev()
+            .find_map(|s| match s {
+                Stage::Conv(c) => Some(c.bank.kernels.iter().map(|k| k.name.clone()).collect()),
+                _ => None,
+            })
+            .unwrap_or_else(|| (0..input_channels).map(|c| format!("input{c}")).collect())
+    }
+}
+
+fn stage_kind(s: &Stage) -> &'static str {
+    match s {
+        Stage::Conv(_) => "conv",
+        Stage::Act(_) => "act",
+        Stage::Pool(_) => "pool",
+    }
+}
+
+/// `3` for (3, 3), `2,1` (rows, cols) otherwise.
+fn pair((a, b): (usize, usize)) -> String {
+    if a == b {
+        a.to_string()
+    } else {
+        format!("{a},{b}")
+    }
+}
