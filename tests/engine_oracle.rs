@@ -7,6 +7,8 @@
 //! (Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed., §3.1);
 //! we allow that bound, plus ε·|bias|.
 
+#![allow(clippy::needless_range_loop)] // index loops read like the formulas they check
+
 mod common;
 
 use common::{oracle, worst, OracleConv, OracleKernel};

@@ -2,6 +2,8 @@
 //! its source): convolution arithmetic, the Dumoulin & Visin numeric example,
 //! numpy.pad's documented and recorded outputs, textbook kernel coefficients.
 
+#![allow(clippy::needless_range_loop)] // index loops read like the formulas they check
+
 mod common;
 
 use common::{nums, reference, rows};
