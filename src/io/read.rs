@@ -48,16 +48,26 @@ pub fn read_luma(path: &Path) -> Result<LoadedImage, Error> {
     if meta.len() == 0 {
         return Err(bad(path, "is empty (0 bytes)"));
     }
-    let mut reader = ImageReader::open(path)
-        .map_err(|e| Error::io(path, e))?
-        .with_guessed_format()
-        .map_err(|e| Error::io(path, e))?;
-    if reader.format().is_none() {
-        return Err(bad(
-            path,
-            "is not an image in a format tapmap reads (PNG, JPEG, TIFF, BMP, PNM)",
-        ));
-    }
+    // Trust the content, not the extension: a text file named .png is "not an
+    // image", a PNG named .tif still reads.
+    let mut head = [0u8; 64];
+    let n = {
+        use std::io::Read;
+        let mut f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+        let mut n = 0;
+        while n < head.len() {
+            match f.read(&mut head[n..]).map_err(|e| Error::io(path, e))? {
+                0 => break,
+                k => n += k,
+            }
+        }
+        n
+    };
+    let format = image::guess_format(&head[..n]).map_err(|_| {
+        bad(path, "is not an image: its first bytes match no format tapmap reads (PNG, JPEG, TIFF, BMP, PNM)")
+    })?;
+    let mut reader = ImageReader::open(path).map_err(|e| Error::io(path, e))?;
+    reader.set_format(format);
     let mut limits = Limits::default();
     limits.max_image_width = Some(MAX_SIDE);
     limits.max_image_height = Some(MAX_SIDE);

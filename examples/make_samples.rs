@@ -1,0 +1,163 @@
+//! Draws tapmap's invented sample captures: glazed tiles from line A of a tile
+//! plant (camera stations S1 glaze, S2 edge, S3 final) with hairline cracks,
+//! chipped corners, pinholes and glaze runs. Nothing here is real data.
+//!
+//! Run: `cargo run --example make_samples -- sample_data`
+//! The output is byte-for-byte the same on every run (fixed seeds, no clock).
+
+use std::path::Path;
+
+use image::{ImageBuffer, Luma, Rgb};
+
+/// splitmix64: a tiny, well-known deterministic generator (Steele, Lea & Flood,
+/// OOPSLA 2014); written here because sample drawing needs nothing more.
+struct Rng(u64);
+
+impl Rng {
+    fn next(&mut self) -> u64 {
+        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
+        let mut z = self.0;
+        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+        z ^ (z >> 31)
+    }
+    /// Uniform in [0, 1).
+    fn unit(&mut self) -> f64 {
+        (self.next() >> 11) as f64 / (1u64 << 53) as f64
+    }
+}
+
+/// A tile capture as brightness in [0, 1], row-major.
+struct Canvas {
+    w: usize,
+    h: usize,
+    v: Vec<f64>,
+}
+
+impl Canvas {
+    /// Dark grout around a glazed tile with a soft lighting gradient and fine texture.
+    fn tile(w: usize, h: usize, rng: &mut Rng) -> Canvas {
+        let margin = 10;
+        let mut v = vec![0.0; w * h];
+        for y in 0..h {
+            for x in 0..w {
+                let inside = x >= margin && x < w - margin && y >= margin && y < h - margin;
+                let base = if inside { 0.72 + 0.08 * (x as f64 / w as f64) - 0.05 * (y as f64 / h as f64) } else { 0.12 };
+                v[y * w + x] = base + 0.015 * (rng.unit() - 0.5);
+            }
+        }
+        Canvas { w, h, v }
+    }
+
+    fn darken(&mut self, x: isize, y: isize, by: f64) {
+        if x >= 0 && y >= 0 && (x as usize) < self.w && (y as usize) < self.h {
+            let i = y as usize * self.w + x as usize;
+            self.v[i] = (self.v[i] - by).max(0.0);
+        }
+    }
+
+    /// A hairline crack: a wandering one-pixel path.
+    fn crack(&mut self, rng: &mut Rng, (mut x, mut y): (f64, f64), steps: usize) {
+        let mut dir = rng.unit() * std::f64::consts::TAU;
+        for _ in 0..steps {
+            self.darken(x.round() as isize, y.round() as isize, 0.35);
+            dir += (rng.unit() - 0.5) * 0.6;
+            x += dir.cos();
+            y += dir.sin();
+        }
+    }
+
+    /// Small dark discs.
+    fn pinholes(&mut self, rng: &mut Rng, n: usize) {
+        for _ in 0..n {
+            let cx = 20.0 + rng.unit() * (self.w as f64 - 40.0);
+            let cy = 20.0 + rng.unit() * (self.h as f64 - 40.0);
+            let r = 1.0 + rng.unit() * 1.5;
+            for dy in -3..=3 {
+                for dx in -3..=3 {
+                    if ((dx * dx + dy * dy) as f64) <= r * r {
+                        self.darken(cx as isize + dx, cy as isize + dy, 0.45);
+                    }
+                }
+            }
+        }
+    }
+
+    /// A chipped corner: the tile's top-right corner broken off to grout level.
+    fn chip(&mut self, size: usize) {
+        let w = self.w;
+        for y in 0..size + 10 {
+            for x in (w - 10 - size)..w {
+                if (x + size + 10 - w) + (size + 10 - y) > size + 10 {
+                    let i = y * w + x;
+                    self.v[i] = self.v[i].min(0.14);
+                }
+            }
+        }
+    }
+
+    /// A glaze run: a brighter, soft-edged vertical streak.
+    fn glaze_run(&mut self, x0: f64, top: usize, len: usize) {
+        for y in top..(top + len).min(self.h - 10) {
+            let fade = 1.0 - (y - top) as f64 / len as f64;
+            for x in 0..self.w {
+                let d = (x as f64 - x0 - 2.0 * ((y as f64) / 9.0).sin()) / 3.0;
+                let i = y * self.w + x;
+                self.v[i] = (self.v[i] + 0.12 * fade * (-d * d).exp()).min(1.0);
+            }
+        }
+    }
+
+    /// 16-bit samples holding 12-bit sensor counts (0..=4095).
+    fn to_12bit(&self) -> ImageBuffer<Luma<u16>, Vec<u16>> {
+        ImageBuffer::from_fn(self.w as u32, self.h as u32, |x, y| {
+            Luma([(self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0) * 4095.0).round() as u16])
+        })
+    }
+
+    fn to_8bit(&self) -> ImageBuffer<Luma<u8>, Vec<u8>> {
+        ImageBuffer::from_fn(self.w as u32, self.h as u32, |x, y| {
+            Luma([(self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0) * 255.0).round() as u8])
+        })
+    }
+
+    /// A warm-glazed colour version for the handheld camera.
+    fn to_rgb(&self) -> ImageBuffer<Rgb<u8>, Vec<u8>> {
+        ImageBuffer::from_fn(self.w as u32, self.h as u32, |x, y| {
+            let v = self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0);
+            let c = |f: f64| (v * f * 255.0).round().clamp(0.0, 255.0) as u8;
+            Rgb([c(1.05), c(0.95), c(0.80)])
+        })
+    }
+}
+
+fn main() -> Result<(), Box<dyn std::error::Error>> {
+    let out = std::env::args().nth(1).unwrap_or_else(|| "sample_data".into());
+    let out = Path::new(&out);
+    std::fs::create_dir_all(out)?;
+    let (w, h) = (256, 192);
+
+    let mut rng = Rng(0x5A11_0001);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.crack(&mut rng, (60.0, 40.0), 170);
+    c.to_12bit().save(out.join("s1-glaze-0001-crack.png"))?;
+
+    let mut rng = Rng(0x5A11_0002);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.pinholes(&mut rng, 9);
+    c.to_12bit().save(out.join("s1-glaze-0002-pinholes.tif"))?;
+
+    let mut rng = Rng(0x5A11_0003);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.chip(28);
+    c.to_8bit().save(out.join("s2-edge-0003-chip.png"))?;
+
+    let mut rng = Rng(0x5A11_0004);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.glaze_run(150.0, 25, 120);
+    c.crack(&mut rng, (40.0, 150.0), 90);
+    c.to_rgb().save(out.join("s3-final-0004-run.jpg"))?;
+
+    println!("wrote 4 sample captures to {}", out.display());
+    Ok(())
+}
