@@ -8,13 +8,18 @@ use tapmap::engine::{run_conv, ConvOptions, ConvStage, Engine};
 use tapmap::kernel::builtin::resolve_bank;
 
 fn image(h: usize, w: usize) -> Array3<f32> {
-    Array3::from_shape_fn((1, h, w), |(_, y, x)| ((x * 31 + y * 17) % 251) as f32 / 251.0)
+    Array3::from_shape_fn((1, h, w), |(_, y, x)| {
+        ((x * 31 + y * 17) % 251) as f32 / 251.0
+    })
 }
 
 fn stage(bank: &str) -> ConvStage {
     ConvStage {
         bank: resolve_bank(bank).expect("bank"),
-        options: ConvOptions { pad: PadMode::Reflect, ..ConvOptions::default() },
+        options: ConvOptions {
+            pad: PadMode::Reflect,
+            ..ConvOptions::default()
+        },
     }
 }
 
@@ -26,18 +31,22 @@ fn engines(c: &mut Criterion) {
         let st = stage(bank);
         g.throughput(Throughput::Elements((size * size) as u64));
         for engine in [Engine::Reference, Engine::Direct] {
-            g.bench_with_input(BenchmarkId::new(engine.name(), format!("{bank}/{size}")), &img, |b, img| {
-                b.iter(|| run_conv(&st, img, engine).expect("run"))
-            });
+            g.bench_with_input(
+                BenchmarkId::new(engine.name(), format!("{bank}/{size}")),
+                &img,
+                |b, img| b.iter(|| run_conv(&st, img, engine).expect("run")),
+            );
         }
     }
     for size in [1024, 2048] {
         let img = image(size, size);
         let st = stage("edges");
         g.throughput(Throughput::Elements((size * size) as u64));
-        g.bench_with_input(BenchmarkId::new("direct", format!("edges/{size}")), &img, |b, img| {
-            b.iter(|| run_conv(&st, img, Engine::Direct).expect("run"))
-        });
+        g.bench_with_input(
+            BenchmarkId::new("direct", format!("edges/{size}")),
+            &img,
+            |b, img| b.iter(|| run_conv(&st, img, Engine::Direct).expect("run")),
+        );
     }
     g.finish();
 }

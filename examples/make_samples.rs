@@ -42,7 +42,11 @@ impl Canvas {
         for y in 0..h {
             for x in 0..w {
                 let inside = x >= margin && x < w - margin && y >= margin && y < h - margin;
-                let base = if inside { 0.72 + 0.08 * (x as f64 / w as f64) - 0.05 * (y as f64 / h as f64) } else { 0.12 };
+                let base = if inside {
+                    0.72 + 0.08 * (x as f64 / w as f64) - 0.05 * (y as f64 / h as f64)
+                } else {
+                    0.12
+                };
                 v[y * w + x] = base + 0.015 * (rng.unit() - 0.5);
             }
         }
@@ -111,13 +115,20 @@ impl Canvas {
     /// 16-bit samples holding 12-bit sensor counts (0..=4095).
     fn to_12bit(&self) -> ImageBuffer<Luma<u16>, Vec<u16>> {
         ImageBuffer::from_fn(self.w as u32, self.h as u32, |x, y| {
-            Luma([(self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0) * 4095.0).round() as u16])
+            Luma([
+                (self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0) * 4095.0).round() as u16,
+            ])
         })
     }
 
     fn to_8bit(&self) -> ImageBuffer<Luma<u8>, Vec<u8>> {
         ImageBuffer::from_fn(self.w as u32, self.h as u32, |x, y| {
-            Luma([(self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0) * 255.0).round() as u8])
+            Luma(
+                [
+                    (self.v[y as usize * self.w + x as usize].clamp(0.0, 1.0) * 255.0).round()
+                        as u8,
+                ],
+            )
         })
     }
 
@@ -132,7 +143,9 @@ impl Canvas {
 }
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
-    let out = std::env::args().nth(1).unwrap_or_else(|| "sample_data".into());
+    let out = std::env::args()
+        .nth(1)
+        .unwrap_or_else(|| "sample_data".into());
     let out = Path::new(&out);
     std::fs::create_dir_all(out)?;
     let (w, h) = (256, 192);

@@ -20,13 +20,17 @@ fn read_npy(path: &Path) -> Array3<f32> {
 /// An 8-bit grey image whose pixel (x, y) is (x·7 + y·3) mod 256.
 fn grey8(dir: &Path, name: &str, w: u32, h: u32) -> PathBuf {
     let p = dir.join(name);
-    ImageBuffer::from_fn(w, h, |x, y| Luma([((x * 7 + y * 3) % 256) as u8])).save(&p).unwrap();
+    ImageBuffer::from_fn(w, h, |x, y| Luma([((x * 7 + y * 3) % 256) as u8]))
+        .save(&p)
+        .unwrap();
     p
 }
 
 fn grey16(dir: &Path, name: &str, w: u32, h: u32) -> PathBuf {
     let p = dir.join(name);
-    ImageBuffer::from_fn(w, h, |x, y| Luma([(x * 1000 + y * 7) as u16])).save(&p).unwrap();
+    ImageBuffer::from_fn(w, h, |x, y| Luma([(x * 1000 + y * 7) as u16]))
+        .save(&p)
+        .unwrap();
     p
 }
 
@@ -59,12 +63,21 @@ fn apply_writes_npy_maps_with_the_documented_shape_and_values() {
     assert!((ma[[1, 2, 4]] - 56.0 / 255.0).abs() < 1e-6);
     let mb = read_npy(&out.join("b.npy"));
     assert_eq!(mb.dim(), (2, 4, 5));
-    assert_eq!(mb[[0, 3, 2]], (2000 + 21) as f32 / 65535.0, "16-bit by 65535");
+    assert_eq!(
+        mb[[0, 3, 2]],
+        (2000 + 21) as f32 / 65535.0,
+        "16-bit by 65535"
+    );
     // The .npy header is what numpy.load expects (NumPy format 1.0, '<f4', C order).
     let bytes = std::fs::read(out.join("b.npy")).unwrap();
     assert_eq!(&bytes[..6], b"\x93NUMPY");
     let header = String::from_utf8_lossy(&bytes[10..80]);
-    assert!(header.contains("'descr': '<f4'") && header.contains("'fortran_order': False") && header.contains("(2, 4, 5)"), "{header}");
+    assert!(
+        header.contains("'descr': '<f4'")
+            && header.contains("'fortran_order': False")
+            && header.contains("(2, 4, 5)"),
+        "{header}"
+    );
     assert!(leftovers(&out).is_empty());
 }
 
@@ -72,17 +85,35 @@ fn apply_writes_npy_maps_with_the_documented_shape_and_values() {
 fn colour_becomes_bt709_luma_and_jpeg_reads() {
     let t = TempDir::new().unwrap();
     let p = t.path().join("c.png");
-    ImageBuffer::from_fn(4, 3, |x, _| if x < 2 { Rgb([255u8, 0, 0]) } else { Rgb([0u8, 0, 255]) }).save(&p).unwrap();
+    ImageBuffer::from_fn(4, 3, |x, _| {
+        if x < 2 {
+            Rgb([255u8, 0, 0])
+        } else {
+            Rgb([0u8, 0, 255])
+        }
+    })
+    .save(&p)
+    .unwrap();
     let j = t.path().join("j.jpg");
-    ImageBuffer::from_fn(16, 16, |_, _| Rgb([128u8, 128, 128])).save(&j).unwrap();
+    ImageBuffer::from_fn(16, 16, |_, _| Rgb([128u8, 128, 128]))
+        .save(&j)
+        .unwrap();
     let out = t.path().join("o");
-    tapmap().args(["apply", "--bank", "identity", "-o"]).arg(&out).args([&p, &j]).assert().success();
+    tapmap()
+        .args(["apply", "--bank", "identity", "-o"])
+        .arg(&out)
+        .args([&p, &j])
+        .assert()
+        .success();
     let m = read_npy(&out.join("c.npy"));
     // ITU-R BT.709-6 item 3.2: Y = 0.2126 R + 0.7152 G + 0.0722 B.
     assert!((m[[0, 0, 0]] - 0.2126).abs() < 1e-6 && (m[[0, 2, 3]] - 0.0722).abs() < 1e-6);
     let mj = read_npy(&out.join("j.npy"));
     assert_eq!(mj.dim(), (1, 16, 16));
-    assert!((mj[[0, 8, 8]] - 128.0 / 255.0).abs() < 3.0 / 255.0, "JPEG is lossy, within 3 levels");
+    assert!(
+        (mj[[0, 8, 8]] - 128.0 / 255.0).abs() < 3.0 / 255.0,
+        "JPEG is lossy, within 3 levels"
+    );
 }
 
 #[test]
@@ -91,14 +122,43 @@ fn stride_act_and_pool_shape_the_output() {
     let a = grey8(t.path(), "a.png", 11, 7);
     let out = t.path().join("o");
     tapmap()
-        .args(["apply", "--bank", "edges", "--stride", "2", "--pad", "reflect", "--act", "abs", "--pool", "max", "--pool-size", "2", "-o"])
+        .args([
+            "apply",
+            "--bank",
+            "edges",
+            "--stride",
+            "2",
+            "--pad",
+            "reflect",
+            "--act",
+            "abs",
+            "--pool",
+            "max",
+            "--pool-size",
+            "2",
+            "-o",
+        ])
         .arg(&out)
         .arg(&a)
         .assert()
         .success();
     // same + stride 2: ceil(7/2)×ceil(11/2) = 4×6; pool 2: 2×3.
     assert_eq!(read_npy(&out.join("a.npy")).dim(), (3, 2, 3));
-    tapmap().args(["apply", "--bank", "edges", "--pool", "mean", "--pool-size", "global", "-o"]).arg(&out).arg(&a).assert().success();
+    tapmap()
+        .args([
+            "apply",
+            "--bank",
+            "edges",
+            "--pool",
+            "mean",
+            "--pool-size",
+            "global",
+            "-o",
+        ])
+        .arg(&out)
+        .arg(&a)
+        .assert()
+        .success();
     let g = read_npy(&out.join("a.npy"));
     assert_eq!(g.dim(), (3, 1, 1));
 }
@@ -136,14 +196,28 @@ fn bad_images_are_reported_and_the_others_still_written() {
         assert!(err.contains(needle), "stderr lacks '{needle}':\n{err}");
     }
     assert_eq!(read_npy(&out.join("good.npy")).dim(), (1, 4, 4));
-    for name in ["notes.npy", "trunc.npy", "empty.npy", "tiny.npy", "gone.npy"] {
+    for name in [
+        "notes.npy",
+        "trunc.npy",
+        "empty.npy",
+        "tiny.npy",
+        "gone.npy",
+    ] {
         assert!(!out.join(name).exists(), "{name} must not be written");
     }
     assert!(leftovers(&out).is_empty());
     // The good file's map is byte-identical to a run without the bad ones.
     let out2 = t.path().join("o2");
-    tapmap().args(["apply", "--bank", "box:size=5", "--extent", "valid", "-o"]).arg(&out2).arg(&good).assert().success();
-    assert_eq!(std::fs::read(out.join("good.npy")).unwrap(), std::fs::read(out2.join("good.npy")).unwrap());
+    tapmap()
+        .args(["apply", "--bank", "box:size=5", "--extent", "valid", "-o"])
+        .arg(&out2)
+        .arg(&good)
+        .assert()
+        .success();
+    assert_eq!(
+        std::fs::read(out.join("good.npy")).unwrap(),
+        std::fs::read(out2.join("good.npy")).unwrap()
+    );
 }
 
 #[test]
@@ -152,13 +226,66 @@ fn usage_and_setup_errors_exit_2_before_any_work() {
     let a = grey8(t.path(), "a.png", 8, 8);
     let out = t.path().join("o");
     let cases: Vec<(Vec<String>, &str)> = vec![
-        (vec!["--bank".into(), "sobelx".into()], "near names: sobel-x"),
-        (vec!["--bank".into(), "edges".into(), "--stride".into(), "0".into()], "stride is 0"),
-        (vec!["--bank".into(), "edges".into(), "--dilation".into(), "1,0".into()], "dilation is 0"),
-        (vec!["--bank".into(), "edges".into(), "--pad".into(), "mirror".into()], "unknown pad mode 'mirror'"),
-        (vec!["--bank".into(), "edges".into(), "--extent".into(), "valid".into(), "--pad-width".into(), "2".into()], "cannot be used with"),
-        (vec!["--bank".into(), "edges".into(), "--pad-width".into(), "1,2".into()], "give one, or four"),
-        (vec!["--bank".into(), "edges".into(), "--act".into(), "gelu".into()], "unknown activation"),
+        (
+            vec!["--bank".into(), "sobelx".into()],
+            "near names: sobel-x",
+        ),
+        (
+            vec![
+                "--bank".into(),
+                "edges".into(),
+                "--stride".into(),
+                "0".into(),
+            ],
+            "stride is 0",
+        ),
+        (
+            vec![
+                "--bank".into(),
+                "edges".into(),
+                "--dilation".into(),
+                "1,0".into(),
+            ],
+            "dilation is 0",
+        ),
+        (
+            vec![
+                "--bank".into(),
+                "edges".into(),
+                "--pad".into(),
+                "mirror".into(),
+            ],
+            "unknown pad mode 'mirror'",
+        ),
+        (
+            vec![
+                "--bank".into(),
+                "edges".into(),
+                "--extent".into(),
+                "valid".into(),
+                "--pad-width".into(),
+                "2".into(),
+            ],
+            "cannot be used with",
+        ),
+        (
+            vec![
+                "--bank".into(),
+                "edges".into(),
+                "--pad-width".into(),
+                "1,2".into(),
+            ],
+            "give one, or four",
+        ),
+        (
+            vec![
+                "--bank".into(),
+                "edges".into(),
+                "--act".into(),
+                "gelu".into(),
+            ],
+            "unknown activation",
+        ),
     ];
     for (args, needle) in cases {
         tapmap()
@@ -174,7 +301,11 @@ fn usage_and_setup_errors_exit_2_before_any_work() {
     assert!(!out.exists(), "no output folder is made for a usage error");
     // A bank file with ragged rows: file, line and the problem.
     let bad = t.path().join("bad-bank.toml");
-    std::fs::write(&bad, "name = \"x\"\n[[kernel]]\nname = \"k\"\ntaps = [[1, 2], [3]]\n").unwrap();
+    std::fs::write(
+        &bad,
+        "name = \"x\"\n[[kernel]]\nname = \"k\"\ntaps = [[1, 2], [3]]\n",
+    )
+    .unwrap();
     tapmap()
         .args(["apply", "--bank"])
         .arg(&bad)
@@ -183,7 +314,9 @@ fn usage_and_setup_errors_exit_2_before_any_work() {
         .arg(&a)
         .assert()
         .code(2)
-        .stderr(predicate::str::contains("bad-bank.toml: line 4, column 8: kernel 'k' has ragged taps"));
+        .stderr(predicate::str::contains(
+            "bad-bank.toml: line 4, column 8: kernel 'k' has ragged taps",
+        ));
     // Output folder that cannot be made (a file stands in its way).
     let blocker = t.path().join("blocker");
     std::fs::write(&blocker, "x").unwrap();
@@ -211,7 +344,17 @@ fn usage_and_setup_errors_exit_2_before_any_work() {
 #[test]
 fn plan_prints_sizes_padding_field_cost_and_unused_edge() {
     let out = tapmap()
-        .args(["plan", "--size", "10x10", "--bank", "box:size=3", "--extent", "valid", "--stride", "4"])
+        .args([
+            "plan",
+            "--size",
+            "10x10",
+            "--bank",
+            "box:size=3",
+            "--extent",
+            "valid",
+            "--stride",
+            "4",
+        ])
         .assert()
         .success()
         .get_output()
@@ -224,11 +367,24 @@ fn plan_prints_sizes_padding_field_cost_and_unused_edge() {
     assert!(s.contains("36"), "{s}");
     assert!(s.contains("3×3 / 4×4"), "{s}");
     tapmap()
-        .args(["plan", "--size", "2x2", "--bank", "box:size=5", "--extent", "valid"])
+        .args([
+            "plan",
+            "--size",
+            "2x2",
+            "--bank",
+            "box:size=5",
+            "--extent",
+            "valid",
+        ])
         .assert()
         .code(2)
-        .stderr(predicate::str::contains("kernel height 5 is larger than the padded input height 2"));
-    tapmap().args(["plan", "--size", "10by10", "--bank", "edges"]).assert().code(2);
+        .stderr(predicate::str::contains(
+            "kernel height 5 is larger than the padded input height 2",
+        ));
+    tapmap()
+        .args(["plan", "--size", "10by10", "--bank", "edges"])
+        .assert()
+        .code(2);
 }
 
 #[test]
@@ -236,30 +392,70 @@ fn bank_make_show_and_list() {
     let t = TempDir::new().unwrap();
     let file = t.path().join("cracks.toml");
     tapmap()
-        .args(["bank", "make", "gabor:theta=0", "gabor", "theta=90", "gaussian", "sigma=2", "--op", "convolve", "-o"])
+        .args([
+            "bank",
+            "make",
+            "gabor:theta=0",
+            "gabor",
+            "theta=90",
+            "gaussian",
+            "sigma=2",
+            "--op",
+            "convolve",
+            "-o",
+        ])
         .arg(&file)
         .assert()
         .success();
     let text = std::fs::read_to_string(&file).unwrap();
-    assert!(text.contains("name = \"cracks\"") && text.contains("op = \"convolve\"") && text.contains("theta = 90.0"), "{text}");
+    assert!(
+        text.contains("name = \"cracks\"")
+            && text.contains("op = \"convolve\"")
+            && text.contains("theta = 90.0"),
+        "{text}"
+    );
     tapmap()
         .args(["bank", "show"])
         .arg(&file)
         .assert()
         .success()
-        .stdout(predicate::str::contains("bank cracks: 3 kernel(s), op convolve").and(predicate::str::contains("rank 1")));
+        .stdout(
+            predicate::str::contains("bank cracks: 3 kernel(s), op convolve")
+                .and(predicate::str::contains("rank 1")),
+        );
     tapmap()
         .args(["bank", "show", "sobel-x"])
         .assert()
         .success()
-        .stdout(predicate::str::contains("separable: column [1 2 1] ⊗ row [-1 0 1]"));
-    let list = tapmap().args(["bank", "list"]).assert().success().get_output().stdout.clone();
+        .stdout(predicate::str::contains(
+            "separable: column [1 2 1] ⊗ row [-1 0 1]",
+        ));
+    let list = tapmap()
+        .args(["bank", "list"])
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
     let list = String::from_utf8(list).unwrap();
     for f in tapmap::kernel::families::FAMILIES {
-        assert!(list.contains(f.name) && list.contains(f.source), "{}", f.name);
+        assert!(
+            list.contains(f.name) && list.contains(f.source),
+            "{}",
+            f.name
+        );
     }
-    tapmap().args(["bank", "make", "sigma=2", "-o"]).arg(&file).assert().code(2).stderr(predicate::str::contains("before any family"));
-    tapmap().args(["bank", "show", "laplace-5"]).assert().code(2).stderr(predicate::str::contains("laplace-4"));
+    tapmap()
+        .args(["bank", "make", "sigma=2", "-o"])
+        .arg(&file)
+        .assert()
+        .code(2)
+        .stderr(predicate::str::contains("before any family"));
+    tapmap()
+        .args(["bank", "show", "laplace-5"])
+        .assert()
+        .code(2)
+        .stderr(predicate::str::contains("laplace-4"));
 }
 
 #[test]
@@ -267,13 +463,26 @@ fn bank_op_override_flips_the_taps() {
     let t = TempDir::new().unwrap();
     let a = grey8(t.path(), "a.png", 9, 5);
     let out = t.path().join("o");
-    tapmap().args(["apply", "--bank", "sobel-x", "-o"]).arg(&out).arg(&a).assert().success();
+    tapmap()
+        .args(["apply", "--bank", "sobel-x", "-o"])
+        .arg(&out)
+        .arg(&a)
+        .assert()
+        .success();
     let corr = read_npy(&out.join("a.npy"));
-    tapmap().args(["apply", "--bank", "sobel-x", "--op", "convolve", "-o"]).arg(&out).arg(&a).assert().success();
+    tapmap()
+        .args(["apply", "--bank", "sobel-x", "--op", "convolve", "-o"])
+        .arg(&out)
+        .arg(&a)
+        .assert()
+        .success();
     let conv = read_npy(&out.join("a.npy"));
     // sobel-x is odd under 180° rotation, so convolve = −correlate.
     for (x, y) in corr.iter().zip(conv.iter()) {
         assert_eq!(*x, -*y);
     }
-    assert!(corr[[0, 2, 4]] > 0.0, "brightness rising to the right gives a positive response");
+    assert!(
+        corr[[0, 2, 4]] > 0.0,
+        "brightness rising to the right gives a positive response"
+    );
 }
