@@ -12,9 +12,9 @@ pub enum Error {
     /// A kernel or bank that is not usable (ragged taps, NaN, unknown family, …).
     #[error("{0}")]
     Kernel(String),
-    /// A bank file that could not be read or parsed.
+    /// A bank or recipe file that could not be parsed or holds something unusable.
     #[error("{path}: {message}")]
-    BankFile {
+    File {
         /// The file.
         path: PathBuf,
         /// What is wrong with it (with line and column where known).

@@ -4,11 +4,12 @@
 //! Layers, each in its own module: [`geometry`] (sizes, padding) · [`border`]
 //! (pad modes) · [`kernel`] (kernels, banks, built-in families, bank files,
 //! analysis) · [`engine`] (strategies for conv stages) · [`stage`] (act, pool,
-//! recipes) · [`io`] (image input, map output) · [`apply`] (the batch job) ·
+//! recipes) · [`io`] (image input, map output) · [`stats`] · [`render`] (views,
+//! sheets) · [`batch`] (the apply job) ·
 //! [`cli`] (the thin command line).
 #![deny(missing_docs)]
 
-pub mod apply;
+pub mod batch;
 pub mod border;
 pub mod cli;
 pub mod engine;
@@ -16,6 +17,8 @@ pub mod error;
 pub mod geometry;
 pub mod io;
 pub mod kernel;
+pub mod render;
 pub mod stage;
+pub mod stats;
 
 pub use error::{Error, Result};

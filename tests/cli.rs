@@ -53,15 +53,14 @@ fn apply_writes_npy_maps_with_the_documented_shape_and_values() {
         .arg(&out)
         .args([&a, &b])
         .assert()
-        .success()
-        .stdout(predicate::str::contains("a.npy"));
-    let ma = read_npy(&out.join("a.npy"));
+        .success();
+    let ma = read_npy(&out.join("maps/a.npy"));
     assert_eq!(ma.dim(), (2, 6, 9), "C×H×W");
     // Integers scale by full scale: 8-bit by 255 (PRODUCT §5).
     assert_eq!(ma[[0, 2, 4]], (4 * 7 + 2 * 3) as f32 / 255.0);
     // Interior sobel-x on a ramp of 7/255 per column: 8·7/255.
     assert!((ma[[1, 2, 4]] - 56.0 / 255.0).abs() < 1e-6);
-    let mb = read_npy(&out.join("b.npy"));
+    let mb = read_npy(&out.join("maps/b.npy"));
     assert_eq!(mb.dim(), (2, 4, 5));
     assert_eq!(
         mb[[0, 3, 2]],
@@ -69,7 +68,7 @@ fn apply_writes_npy_maps_with_the_documented_shape_and_values() {
         "16-bit by 65535"
     );
     // The .npy header is what numpy.load expects (NumPy format 1.0, '<f4', C order).
-    let bytes = std::fs::read(out.join("b.npy")).unwrap();
+    let bytes = std::fs::read(out.join("maps/b.npy")).unwrap();
     assert_eq!(&bytes[..6], b"\x93NUMPY");
     let header = String::from_utf8_lossy(&bytes[10..80]);
     assert!(
@@ -78,7 +77,7 @@ fn apply_writes_npy_maps_with_the_documented_shape_and_values() {
             && header.contains("(2, 4, 5)"),
         "{header}"
     );
-    assert!(leftovers(&out).is_empty());
+    assert!(leftovers(&out.join("maps")).is_empty());
 }
 
 #[test]
@@ -105,10 +104,10 @@ fn colour_becomes_bt709_luma_and_jpeg_reads() {
         .args([&p, &j])
         .assert()
         .success();
-    let m = read_npy(&out.join("c.npy"));
+    let m = read_npy(&out.join("maps/c.npy"));
     // ITU-R BT.709-6 item 3.2: Y = 0.2126 R + 0.7152 G + 0.0722 B.
     assert!((m[[0, 0, 0]] - 0.2126).abs() < 1e-6 && (m[[0, 2, 3]] - 0.0722).abs() < 1e-6);
-    let mj = read_npy(&out.join("j.npy"));
+    let mj = read_npy(&out.join("maps/j.npy"));
     assert_eq!(mj.dim(), (1, 16, 16));
     assert!(
         (mj[[0, 8, 8]] - 128.0 / 255.0).abs() < 3.0 / 255.0,
@@ -143,7 +142,7 @@ fn stride_act_and_pool_shape_the_output() {
         .assert()
         .success();
     // same + stride 2: ceil(7/2)×ceil(11/2) = 4×6; pool 2: 2×3.
-    assert_eq!(read_npy(&out.join("a.npy")).dim(), (3, 2, 3));
+    assert_eq!(read_npy(&out.join("maps/a.npy")).dim(), (3, 2, 3));
     tapmap()
         .args([
             "apply",
@@ -159,7 +158,7 @@ fn stride_act_and_pool_shape_the_output() {
         .arg(&a)
         .assert()
         .success();
-    let g = read_npy(&out.join("a.npy"));
+    let g = read_npy(&out.join("maps/a.npy"));
     assert_eq!(g.dim(), (3, 1, 1));
 }
 
@@ -190,12 +189,12 @@ fn bad_images_are_reported_and_the_others_still_written() {
         "empty.tif: is empty",
         "tiny.png: stage 1 (conv): kernel 'box:size=5' (5×5): kernel height 5 is larger than the padded input height 2",
         "gone.png",
-        "1 image(s) written",
+        "1 processed",
         "5 failed",
     ] {
         assert!(err.contains(needle), "stderr lacks '{needle}':\n{err}");
     }
-    assert_eq!(read_npy(&out.join("good.npy")).dim(), (1, 4, 4));
+    assert_eq!(read_npy(&out.join("maps/good.npy")).dim(), (1, 4, 4));
     for name in [
         "notes.npy",
         "trunc.npy",
@@ -203,9 +202,12 @@ fn bad_images_are_reported_and_the_others_still_written() {
         "tiny.npy",
         "gone.npy",
     ] {
-        assert!(!out.join(name).exists(), "{name} must not be written");
+        assert!(
+            !out.join("maps").join(name).exists(),
+            "{name} must not be written"
+        );
     }
-    assert!(leftovers(&out).is_empty());
+    assert!(leftovers(&out.join("maps")).is_empty());
     // The good file's map is byte-identical to a run without the bad ones.
     let out2 = t.path().join("o2");
     tapmap()
@@ -215,8 +217,8 @@ fn bad_images_are_reported_and_the_others_still_written() {
         .assert()
         .success();
     assert_eq!(
-        std::fs::read(out.join("good.npy")).unwrap(),
-        std::fs::read(out2.join("good.npy")).unwrap()
+        std::fs::read(out.join("maps/good.npy")).unwrap(),
+        std::fs::read(out2.join("maps/good.npy")).unwrap()
     );
 }
 
@@ -469,14 +471,14 @@ fn bank_op_override_flips_the_taps() {
         .arg(&a)
         .assert()
         .success();
-    let corr = read_npy(&out.join("a.npy"));
+    let corr = read_npy(&out.join("maps/a.npy"));
     tapmap()
         .args(["apply", "--bank", "sobel-x", "--op", "convolve", "-o"])
         .arg(&out)
         .arg(&a)
         .assert()
         .success();
-    let conv = read_npy(&out.join("a.npy"));
+    let conv = read_npy(&out.join("maps/a.npy"));
     // sobel-x is odd under 180° rotation, so convolve = −correlate.
     for (x, y) in corr.iter().zip(conv.iter()) {
         assert_eq!(*x, -*y);

@@ -8,14 +8,17 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
-use crate::apply::{run_apply, ApplyJob};
+use crate::batch::run::check_channels;
+use crate::batch::{run_apply, ApplyJob, Save, ViewOptions};
 use crate::border::PadMode;
 use crate::engine::{ConvOptions, ConvStage, Engine};
 use crate::error::Error;
 use crate::geometry::{Extent, PadWidth};
+use crate::io::read::{ColorMode, ReadOptions};
 use crate::kernel::bankfile::bank_to_toml;
 use crate::kernel::builtin::resolve_bank;
 use crate::kernel::{Bank, FamilySpec, Op};
+use crate::stage::recipefile::{read_recipe, RecipeSpec};
 use crate::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, Stage};
 
 /// Exit status: everything worked.
@@ -39,17 +42,21 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
-    /// Run a bank over images and write one .npy of float32 maps (C×H×W) per image.
+    /// Run a bank or recipe over images, folders and globs; write maps, views, sheets, stats, manifest.
     #[command(after_help = "Examples:\n  \
-        tapmap apply --bank edges --out maps sample_data/*.png\n  \
+        tapmap apply --recipe kernels/line-a-edges.recipe.toml --out runs/night sample_data\n  \
+        tapmap apply --bank edges --white 4095 --save all --out runs/s1 'captures/s1/**/*.png'\n  \
         tapmap apply --bank gaussian:sigma=2 --pad reflect --stride 2 --out blur tile.tif\n  \
-        tapmap apply --bank my-filters.toml --op correlate --act relu --pool max --pool-size 2 --out fm a.png b.png\n\n\
-        Each input INPUT/<stem>.ext writes OUT/<stem>.npy, loadable with numpy.load.")]
+        tapmap apply --bank my-filters.toml --color rgb --act relu --pool max --pool-size 2 --out fm photos/\n\n\
+        Outputs mirror each input's path below its folder or pattern root:\n  \
+        OUT/maps/P.npy (float32 C×H×W, numpy.load), OUT/views/P/NN-name.png, OUT/sheets/P.png,\n  \
+        OUT/tiff/P/NN-name.tif, OUT/stats.csv, OUT/images.csv, OUT/manifest.json.")]
     Apply(ApplyArgs),
     /// Print each stage's output size, padding, receptive field and cost for an input size.
     #[command(after_help = "Examples:\n  \
         tapmap plan --size 640x480 --bank edges\n  \
-        tapmap plan --size 1024x1024 --bank blobs --extent valid --stride 2 --pool max --pool-size 2")]
+        tapmap plan --size 1024x1024 --bank blobs --extent valid --stride 2 --pool max --pool-size 2\n  \
+        tapmap plan --size 4096x3000 --recipe kernels/line-a-edges.recipe.toml")]
     Plan(PlanArgs),
     /// Built-in kernels and bank files: list, show, make.
     #[command(subcommand)]
@@ -58,45 +65,60 @@ enum Command {
 
 #[derive(Args, Clone)]
 struct StageArgs {
+    /// Recipe file (TOML): input handling and any number of conv, act and pool stages.
+    /// The conv flags below then override the first conv stage.
+    #[arg(long, short = 'r', value_name = "FILE")]
+    recipe: Option<PathBuf>,
     /// Bank: a bank file (.toml), a shipped bank (edges, gradients, smooth, blobs, texture),
     /// or kernel families joined with '+', e.g. sobel-x+sobel-y or gaussian:sigma=2.
-    #[arg(long, short = 'b', value_name = "NAME|FILE")]
-    bank: String,
+    #[arg(
+        long,
+        short = 'b',
+        value_name = "NAME|FILE",
+        required_unless_present = "recipe"
+    )]
+    bank: Option<String>,
     /// convolve (rotate taps 180°) or correlate (taps as written); default: as the bank declares.
     #[arg(long, value_name = "OP")]
     op: Option<Op>,
-    /// What stands outside the image: zero, replicate, reflect, symmetric, wrap.
-    #[arg(long, default_value = "zero", value_name = "MODE")]
-    pad: PadMode,
-    /// How much padding: valid (none), same (output = ceil(input/stride)), full (k−1 each side).
-    #[arg(
-        long,
-        default_value = "same",
-        conflicts_with = "pad_width",
-        value_name = "EXTENT"
-    )]
-    extent: Extent,
+    /// What stands outside the image: zero, replicate, reflect, symmetric, wrap [default: zero].
+    #[arg(long, value_name = "MODE")]
+    pad: Option<PadMode>,
+    /// How much padding: valid (none), same (output = ceil(input/stride)), full (k−1 each side) [default: same].
+    #[arg(long, conflicts_with = "pad_width", value_name = "EXTENT")]
+    extent: Option<Extent>,
     /// Explicit padding instead of --extent: N, or TOP,BOTTOM,LEFT,RIGHT.
     #[arg(long, value_name = "N|T,B,L,R")]
     pad_width: Option<PadWidth>,
-    /// Stride: N, or ROWS,COLS.
-    #[arg(long, default_value = "1", value_parser = parse_pair, value_name = "N|ROWS,COLS")]
-    stride: (usize, usize),
-    /// Dilation: N, or ROWS,COLS.
-    #[arg(long, default_value = "1", value_parser = parse_pair, value_name = "N|ROWS,COLS")]
-    dilation: (usize, usize),
+    /// Stride: N, or ROWS,COLS [default: 1].
+    #[arg(long, value_parser = parse_pair, value_name = "N|ROWS,COLS")]
+    stride: Option<(usize, usize)>,
+    /// Dilation: N, or ROWS,COLS [default: 1].
+    #[arg(long, value_parser = parse_pair, value_name = "N|ROWS,COLS")]
+    dilation: Option<(usize, usize)>,
     /// Activation after the conv: none, relu, leaky-relu[:SLOPE], abs, square, tanh, sigmoid.
-    #[arg(long, default_value = "none", value_name = "ACT")]
-    act: Activation,
+    #[arg(long, value_name = "ACT", conflicts_with = "recipe")]
+    act: Option<Activation>,
     /// Pooling after the activation: max or mean.
-    #[arg(long, value_name = "KIND")]
+    #[arg(long, value_name = "KIND", conflicts_with = "recipe")]
     pool: Option<PoolKind>,
-    /// Pool window: N, ROWS,COLS, or global (each map to one value). Default 2.
+    /// Pool window: N, ROWS,COLS, or global (each map to one value) [default: 2].
     #[arg(long, value_name = "N|ROWS,COLS|global", requires = "pool")]
     pool_size: Option<String>,
-    /// Pool stride: N or ROWS,COLS. Default: the window size.
+    /// Pool stride: N or ROWS,COLS [default: the window size].
     #[arg(long, value_parser = parse_pair, value_name = "N|ROWS,COLS", requires = "pool")]
     pool_stride: Option<(usize, usize)>,
+    /// Colour handling: luma (BT.709, one channel), rgb (three channels for three-plane
+    /// kernels), split (every kernel over every channel, maps named kernel@channel) [default: luma].
+    #[arg(long, value_name = "MODE")]
+    color: Option<ColorMode>,
+    /// White level of integer samples, e.g. 4095 for 12-bit data in 16-bit files
+    /// (used where the file's type can hold it) [default: full scale].
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    white: Option<u32>,
+    /// Do not apply the EXIF orientation; read pixels as stored.
+    #[arg(long)]
+    ignore_orientation: bool,
     /// Conv strategy: auto (the planner chooses), reference (slow, exact), direct.
     #[arg(long, default_value = "auto", value_name = "ENGINE")]
     engine: Engine,
@@ -106,13 +128,29 @@ struct StageArgs {
 struct ApplyArgs {
     #[command(flatten)]
     stage: StageArgs,
-    /// Output folder (created if missing).
+    /// Output folder (created if missing); never read as input.
     #[arg(long, short = 'o', value_name = "DIR")]
     out: PathBuf,
-    /// Print nothing but errors.
+    /// What to write, comma-separated: maps, tiff, views, sheets, stats, manifest, or all.
+    /// images.csv is always written.
+    #[arg(long, default_value = "maps,views,stats,manifest", value_name = "LIST")]
+    save: Save,
+    /// Fixed value range LO,HI for every view [default: per map].
+    #[arg(long, value_parser = parse_range, value_name = "LO,HI", allow_hyphen_values = true)]
+    view_range: Option<(f32, f32)>,
+    /// Bits per grey view sample: 8 or 16.
+    #[arg(long, default_value_t = 8, value_parser = parse_depth, value_name = "BITS")]
+    view_depth: u8,
+    /// Threshold T for the above_fraction column of stats.csv (fraction of samples > T).
+    #[arg(long, value_name = "T", allow_hyphen_values = true)]
+    threshold: Option<f32>,
+    /// Images processed at once, and threads [default: all cores].
+    #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    jobs: Option<u32>,
+    /// Print nothing but errors (no progress bar, no summary unless something failed).
     #[arg(long, short = 'q')]
     quiet: bool,
-    /// Image files (PNG, JPEG, TIFF; 8- or 16-bit; colour becomes BT.709 luma).
+    /// Image files, folders (read recursively) and glob patterns (quote them: 'captures/**/*.png').
     #[arg(required = true, value_name = "INPUT")]
     inputs: Vec<PathBuf>,
 }
@@ -124,9 +162,6 @@ struct PlanArgs {
     /// Input size, WIDTHxHEIGHT.
     #[arg(long, value_parser = parse_size, value_name = "WxH")]
     size: (usize, usize),
-    /// Input channels.
-    #[arg(long, default_value_t = 1, value_name = "N")]
-    channels: usize,
 }
 
 #[derive(Subcommand)]
@@ -180,6 +215,32 @@ fn parse_pair(s: &str) -> Result<(usize, usize), String> {
     }
 }
 
+fn parse_range(s: &str) -> Result<(f32, f32), String> {
+    let (a, b) = s
+        .split_once(',')
+        .ok_or_else(|| format!("'{s}': give LO,HI"))?;
+    let num = |p: &str| {
+        p.trim()
+            .parse::<f32>()
+            .ok()
+            .filter(|v| v.is_finite())
+            .ok_or_else(|| format!("'{p}' is not a finite number"))
+    };
+    let (lo, hi) = (num(a)?, num(b)?);
+    if lo >= hi {
+        return Err(format!("'{s}': LO must be below HI"));
+    }
+    Ok((lo, hi))
+}
+
+fn parse_depth(s: &str) -> Result<u8, String> {
+    match s {
+        "8" => Ok(8),
+        "16" => Ok(16),
+        _ => Err(format!("view depth '{s}': give 8 or 16")),
+    }
+}
+
 fn parse_size(s: &str) -> Result<(usize, usize), String> {
     let (w, h) = s
         .split_once(['x', 'X'])
@@ -195,46 +256,105 @@ fn parse_size(s: &str) -> Result<(usize, usize), String> {
 }
 
 impl StageArgs {
-    /// Turns the flags into a checked one-conv recipe (plus act and pool).
-    fn recipe(&self) -> Result<Recipe, Error> {
-        let bank = resolve_bank(&self.bank)?;
-        let extent = self.pad_width.map_or(self.extent, Extent::Explicit);
-        for (what, (a, b)) in [("stride", self.stride), ("dilation", self.dilation)] {
-            if a == 0 || b == 0 {
-                return Err(Error::Geometry(format!(
-                    "{what} is 0; it must be at least 1"
-                )));
+    /// Turns the flags (and the recipe file, if any) into a checked recipe spec:
+    /// with a recipe, conv flags override its first conv stage; without one, the
+    /// flags make a one-conv recipe with optional act and pool.
+    fn spec(&self) -> Result<RecipeSpec, Error> {
+        for (what, v) in [("stride", self.stride), ("dilation", self.dilation)] {
+            if let Some((a, b)) = v {
+                if a == 0 || b == 0 {
+                    return Err(Error::Geometry(format!(
+                        "{what} is 0; it must be at least 1"
+                    )));
+                }
             }
         }
-        let options = ConvOptions {
-            op: self.op,
-            pad: self.pad,
-            extent,
-            stride: self.stride,
-            dilation: self.dilation,
-        };
-        let mut stages = vec![Stage::Conv(ConvStage { bank, options })];
-        if self.act != Activation::None {
-            stages.push(Stage::Act(self.act));
-        }
-        if let Some(kind) = self.pool {
-            let window = match self.pool_size.as_deref() {
-                Some("global") => PoolWindow::Global,
-                other => {
-                    let size = parse_pair(other.unwrap_or("2"))
-                        .map_err(|e| Error::Stage(format!("--pool-size {e}")))?;
-                    let stride = self.pool_stride.unwrap_or(size);
-                    if size.0 == 0 || size.1 == 0 || stride.0 == 0 || stride.1 == 0 {
-                        return Err(Error::Stage(
-                            "pool size and stride must be at least 1".into(),
-                        ));
-                    }
-                    PoolWindow::Sized { size, stride }
+        let mut spec = match &self.recipe {
+            Some(path) => read_recipe(path)?,
+            None => {
+                let bank = resolve_bank(self.bank.as_deref().unwrap_or_default())?;
+                let mut stages = vec![Stage::Conv(ConvStage {
+                    bank,
+                    options: ConvOptions::default(),
+                })];
+                if let Some(act) = self.act.filter(|a| *a != Activation::None) {
+                    stages.push(Stage::Act(act));
                 }
-            };
-            stages.push(Stage::Pool(Pool { kind, window }));
+                if let Some(kind) = self.pool {
+                    stages.push(Stage::Pool(Pool {
+                        kind,
+                        window: self.pool_window()?,
+                    }));
+                }
+                RecipeSpec {
+                    input: ReadOptions::default(),
+                    recipe: Recipe { stages },
+                }
+            }
+        };
+        let first = spec.recipe.stages.iter_mut().find_map(|s| match s {
+            Stage::Conv(c) => Some(c),
+            _ => None,
+        });
+        match first {
+            Some(conv) => {
+                if self.recipe.is_some() {
+                    if let Some(b) = &self.bank {
+                        conv.bank = resolve_bank(b)?;
+                    }
+                }
+                let o = &mut conv.options;
+                o.op = self.op.or(o.op);
+                o.pad = self.pad.unwrap_or(o.pad);
+                o.extent = self
+                    .pad_width
+                    .map(Extent::Explicit)
+                    .or(self.extent)
+                    .unwrap_or(o.extent);
+                o.stride = self.stride.unwrap_or(o.stride);
+                o.dilation = self.dilation.unwrap_or(o.dilation);
+            }
+            None if self.bank.is_some()
+                || self.op.is_some()
+                || self.pad.is_some()
+                || self.extent.is_some()
+                || self.pad_width.is_some()
+                || self.stride.is_some()
+                || self.dilation.is_some() =>
+            {
+                return Err(Error::Stage(
+                    "conv flags were given but the recipe has no conv stage".into(),
+                ));
+            }
+            None => {}
         }
-        Ok(Recipe { stages })
+        if let Some(c) = self.color {
+            spec.input.color = c;
+        }
+        if self.white.is_some() {
+            spec.input.white = self.white;
+        }
+        if self.ignore_orientation {
+            spec.input.apply_orientation = false;
+        }
+        Ok(spec)
+    }
+
+    fn pool_window(&self) -> Result<PoolWindow, Error> {
+        Ok(match self.pool_size.as_deref() {
+            Some("global") => PoolWindow::Global,
+            other => {
+                let size = parse_pair(other.unwrap_or("2"))
+                    .map_err(|e| Error::Stage(format!("--pool-size {e}")))?;
+                let stride = self.pool_stride.unwrap_or(size);
+                if size.0 == 0 || size.1 == 0 || stride.0 == 0 || stride.1 == 0 {
+                    return Err(Error::Stage(
+                        "pool size and stride must be at least 1".into(),
+                    ));
+                }
+                PoolWindow::Sized { size, stride }
+            }
+        })
     }
 }
 
@@ -260,10 +380,17 @@ fn run(cli: Cli) -> Result<i32, Error> {
     match cli.command {
         Command::Apply(a) => apply(a),
         Command::Plan(p) => {
-            let recipe = p.stage.recipe()?;
+            let spec = p.stage.spec()?;
+            check_channels(&spec)?;
             let (w, h) = p.size;
-            let plans = recipe.plan(p.channels, h, w, p.stage.engine)?;
-            print!("{}", report::plan_table((p.channels, h, w), &plans));
+            let channels = if spec.input.color == ColorMode::Rgb {
+                3
+            } else {
+                1
+            };
+            let recipe = spec.recipe;
+            let plans = recipe.plan(channels, h, w, p.stage.engine)?;
+            print!("{}", report::plan_table((channels, h, w), &plans));
             Ok(EXIT_OK)
         }
         Command::Bank(BankCommand::List) => {
@@ -329,25 +456,45 @@ fn make_bank(
 }
 
 fn apply(a: ApplyArgs) -> Result<i32, Error> {
-    let recipe = a.stage.recipe()?;
+    let spec = a.stage.spec()?;
+    let jobs = a.jobs.map_or_else(
+        || std::thread::available_parallelism().map_or(1, |n| n.get()),
+        |j| j as usize,
+    );
+    // One pool for the engine's row bands; image workers are separate (see batch::run).
+    let _ = rayon::ThreadPoolBuilder::new()
+        .num_threads(jobs)
+        .build_global();
     let job = ApplyJob {
-        recipe,
+        spec,
         engine: a.stage.engine,
         out_dir: a.out.clone(),
         inputs: a.inputs,
+        save: a.save,
+        view: ViewOptions {
+            range: a.view_range,
+            depth16: a.view_depth == 16,
+        },
+        threshold: a.threshold,
+        jobs,
+        command_line: std::env::args().collect(),
+        progress: !a.quiet,
     };
-    let quiet = a.quiet;
-    let summary = run_apply(&job, |o| match &o.result {
-        Ok(out) if !quiet => println!("{} -> {}", o.input.display(), out.display()),
-        Ok(_) => {}
-        Err(e) => eprintln!("tapmap: {e}"),
-    })?;
-    if !quiet || summary.failed > 0 {
+    let summary = run_apply(&job, &|msg| eprintln!("tapmap: {msg}"))?;
+    if !a.quiet || summary.failed > 0 {
+        let rate = if summary.seconds > 0.0 {
+            (summary.processed + summary.failed) as f64 / summary.seconds
+        } else {
+            0.0
+        };
         eprintln!(
-            "tapmap: {} image(s) written to {}, {} failed",
-            summary.written,
+            "tapmap: {} processed, {} failed, {:.2} s ({rate:.1} images/s); {} files in {} (see images.csv{})",
+            summary.processed,
+            summary.failed,
+            summary.seconds,
+            summary.files,
             a.out.display(),
-            summary.failed
+            if a.save.manifest { ", manifest.json" } else { "" }
         );
     }
     Ok(if summary.failed > 0 {

@@ -3,3 +3,4 @@
 pub mod atomic;
 pub mod npy;
 pub mod read;
+pub mod tiff;

@@ -1,14 +1,26 @@
-//! Reading images into `C × H × W` f32 arrays.
+//! Reading images into `C × H × W` f32 arrays, with what the file says about itself.
 //!
-//! Integer samples are scaled to [0, 1] by the type's full scale (255 or 65535);
-//! float samples are taken as they are. Colour becomes luma with the ITU-R BT.709
-//! weights Y = 0.2126 R + 0.7152 G + 0.0722 B (ITU-R Recommendation BT.709-6,
-//! item 3.2), applied to the stored (gamma-encoded) values without linearising,
-//! as is common practice for luma. Alpha is ignored.
+//! - **Units**: integer samples are divided by the white level: the type's full
+//!   scale (255, 65535), or a declared `white` (such as 4095 for 12-bit data stored
+//!   in 16 bits) where the type can hold it. Float samples are taken as they are.
+//!   Bit depth is never reduced: 16-bit samples go to f32 directly.
+//! - **Orientation**: the EXIF orientation (or a TIFF's own Orientation tag) is
+//!   applied before anything else, so maps line up with what a viewer shows
+//!   (EXIF 2.3, JEITA CP-3451C, tag 0x0112: values 1–8). It can be switched off.
+//! - **Colour**: `luma` gives one channel with the ITU-R BT.709 weights
+//!   Y = 0.2126 R + 0.7152 G + 0.0722 B (BT.709-6, item 3.2), applied to the stored
+//!   (gamma-encoded) values as is common practice for luma; `rgb` gives three
+//!   channels r, g, b; `split` gives the image's own channels (r, g, b or grey).
+//!   Alpha is ignored.
+//! - **Content decides the format**, not the extension.
 
+use std::fmt;
+use std::io::Read;
 use std::path::Path;
+use std::str::FromStr;
 
-use image::{DynamicImage, ImageReader, Limits};
+use image::metadata::Orientation;
+use image::{DynamicImage, ImageDecoder, ImageReader, Limits};
 use ndarray::Array3;
 
 use crate::error::Error;
@@ -21,15 +33,104 @@ pub const MAX_SIDE: u32 = 65_535;
 /// Largest decoder allocation in bytes.
 pub const MAX_ALLOC: u64 = 2 << 30;
 
-/// A decoded image as one luma plane, with what it was.
+/// How colour images become input channels.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum ColorMode {
+    /// One channel: BT.709 luma (grey images as they are).
+    #[default]
+    Luma,
+    /// Three channels r, g, b, for banks whose kernels have three planes.
+    Rgb,
+    /// The image's own channels; every kernel runs over each (maps `kernel@channel`).
+    Split,
+}
+
+impl ColorMode {
+    /// Name on the command line and in recipes.
+    pub fn name(self) -> &'static str {
+        match self {
+            ColorMode::Luma => "luma",
+            ColorMode::Rgb => "rgb",
+            ColorMode::Split => "split",
+        }
+    }
+}
+
+impl fmt::Display for ColorMode {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+impl FromStr for ColorMode {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "luma" => Ok(ColorMode::Luma),
+            "rgb" => Ok(ColorMode::Rgb),
+            "split" => Ok(ColorMode::Split),
+            o => Err(format!(
+                "unknown colour mode '{o}'; expected luma, rgb or split"
+            )),
+        }
+    }
+}
+
+/// How to read.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ReadOptions {
+    /// Channel handling.
+    pub color: ColorMode,
+    /// Declared white level for integer samples (used where the type can hold it).
+    pub white: Option<u32>,
+    /// Apply the EXIF/TIFF orientation.
+    pub apply_orientation: bool,
+}
+
+impl Default for ReadOptions {
+    fn default() -> Self {
+        ReadOptions {
+            color: ColorMode::Luma,
+            white: None,
+            apply_orientation: true,
+        }
+    }
+}
+
+/// What a file says about itself.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct ImageMeta {
+    /// Width as stored in the file.
+    pub width: u32,
+    /// Height as stored in the file.
+    pub height: u32,
+    /// Bits per sample (8, 16, or 32 for float).
+    pub bit_depth: u8,
+    /// Float samples.
+    pub float: bool,
+    /// Colour layout: `grey`, `grey+alpha`, `rgb`, `rgba`.
+    pub color: &'static str,
+    /// The value that became 1.0 (integer images), or `None` for float.
+    pub white: Option<u32>,
+    /// EXIF/TIFF orientation value (1–8), where present.
+    pub orientation: Option<u16>,
+    /// Whether the orientation was applied.
+    pub orientation_applied: bool,
+    /// EXIF DateTimeOriginal (or DateTime), as written.
+    pub captured: Option<String>,
+    /// EXIF ExposureTime in seconds, as written (e.g. `1/250`).
+    pub exposure: Option<String>,
+}
+
+/// A decoded image ready for a recipe.
 #[derive(Debug, Clone)]
 pub struct LoadedImage {
-    /// `1 × H × W` luma in [0, 1] for integer inputs.
+    /// `C × H × W` samples, after orientation.
     pub data: Array3<f32>,
-    /// Bits per sample in the file (8, 16 or 32 for float).
-    pub bit_depth: u8,
-    /// Colour layout in the file: `grey`, `grey+alpha`, `rgb`, `rgba`.
-    pub color: &'static str,
+    /// Name of each channel (`luma`, `grey`, `r`, `g`, `b`).
+    pub channel_names: Vec<String>,
+    /// What the file said.
+    pub meta: ImageMeta,
 }
 
 fn bad(path: &Path, message: impl Into<String>) -> Error {
@@ -39,8 +140,13 @@ fn bad(path: &Path, message: impl Into<String>) -> Error {
     }
 }
 
-/// Reads an image file and returns its luma plane.
+/// Reads an image file with the default options (luma, full scale, oriented).
 pub fn read_luma(path: &Path) -> Result<LoadedImage, Error> {
+    read_image(path, &ReadOptions::default())
+}
+
+/// Reads an image file (see the module header for units, orientation, colour).
+pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error> {
     let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
     if meta.is_dir() {
         return Err(bad(path, "is a folder, not an image file"));
@@ -51,18 +157,16 @@ pub fn read_luma(path: &Path) -> Result<LoadedImage, Error> {
     // Trust the content, not the extension: a text file named .png is "not an
     // image", a PNG named .tif still reads.
     let mut head = [0u8; 64];
-    let n = {
-        use std::io::Read;
+    let mut n = 0;
+    {
         let mut f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
-        let mut n = 0;
         while n < head.len() {
             match f.read(&mut head[n..]).map_err(|e| Error::io(path, e))? {
                 0 => break,
                 k => n += k,
             }
         }
-        n
-    };
+    }
     let format = image::guess_format(&head[..n]).map_err(|_| {
         bad(path, "is not an image: its first bytes match no format tapmap reads (PNG, JPEG, TIFF, BMP, PNM)")
     })?;
@@ -73,55 +177,171 @@ pub fn read_luma(path: &Path) -> Result<LoadedImage, Error> {
     limits.max_image_height = Some(MAX_SIDE);
     limits.max_alloc = Some(MAX_ALLOC);
     reader.limits(limits);
-    let img = reader
-        .decode()
+    let mut decoder = reader
+        .into_decoder()
+        .map_err(|e| bad(path, format!("cannot decode: {e}")))?;
+    let mut info = ImageMeta::default();
+    let exif_raw = decoder
+        .exif_metadata()
+        .map_err(|e| bad(path, format!("cannot read its metadata: {e}")))?;
+    if let Some(raw) = exif_raw.as_deref() {
+        read_exif(raw, &mut info).map_err(|m| bad(path, m))?;
+    }
+    if info.orientation.is_none() {
+        // TIFF keeps orientation in its own tag rather than an EXIF block.
+        let o = decoder
+            .orientation()
+            .map_err(|e| bad(path, format!("cannot read its orientation: {e}")))?;
+        if o != Orientation::NoTransforms {
+            info.orientation = Some(o.to_exif() as u16);
+        }
+    }
+    let orientation = match info.orientation {
+        Some(v) => Orientation::from_exif(v.min(255) as u8).ok_or_else(|| {
+            bad(
+                path,
+                format!(
+                    "has EXIF orientation {v}, which is not one of the defined values 1–8; \
+                     use --ignore-orientation to read the pixels as stored"
+                ),
+            )
+        }),
+        None => Ok(Orientation::NoTransforms),
+    };
+    let orientation = match (orientation, opts.apply_orientation) {
+        (Ok(o), _) => o,
+        (Err(_), false) => Orientation::NoTransforms,
+        (Err(e), true) => return Err(e),
+    };
+    let mut img = DynamicImage::from_decoder(decoder)
         .map_err(|e| bad(path, format!("cannot decode: {e}")))?;
     if img.width() == 0 || img.height() == 0 {
         return Err(bad(path, "has zero width or height"));
     }
-    to_luma(&img).map_err(|m| bad(path, m))
+    info.width = img.width();
+    info.height = img.height();
+    if opts.apply_orientation {
+        img.apply_orientation(orientation);
+        info.orientation_applied = orientation != Orientation::NoTransforms;
+    }
+    convert(&img, opts, info).map_err(|m| bad(path, m))
 }
 
-/// Converts a decoded image to a luma plane (see the module header for the rule).
-pub fn to_luma(img: &DynamicImage) -> Result<LoadedImage, String> {
+/// Fills orientation, capture time and exposure from a raw EXIF block
+/// (TIFF structure, with or without the `Exif\0\0` prefix).
+fn read_exif(raw: &[u8], info: &mut ImageMeta) -> Result<(), String> {
+    let body = raw.strip_prefix(b"Exif\0\0").unwrap_or(raw);
+    let exif = exif::Reader::new().read_raw(body.to_vec()).map_err(|e| {
+        format!("has an EXIF block that does not parse ({e}); use --ignore-orientation to skip it")
+    })?;
+    let field = |tag| exif.get_field(tag, exif::In::PRIMARY);
+    if let Some(f) = field(exif::Tag::Orientation) {
+        info.orientation = Some(
+            f.value
+                .get_uint(0)
+                .map_or(0, |v| v.min(u16::MAX as u32) as u16),
+        );
+    }
+    let text = |tag| {
+        field(tag).map(|f| match &f.value {
+            exif::Value::Ascii(v) => v
+                .first()
+                .map(|s| String::from_utf8_lossy(s).trim().to_string())
+                .unwrap_or_default(),
+            other => other.display_as(tag).to_string(),
+        })
+    };
+    info.captured = text(exif::Tag::DateTimeOriginal).or_else(|| text(exif::Tag::DateTime));
+    info.exposure = field(exif::Tag::ExposureTime).and_then(|f| match &f.value {
+        exif::Value::Rational(v) => v.first().map(|r| format!("{}/{}", r.num, r.denom)),
+        _ => None,
+    });
+    Ok(())
+}
+
+/// Converts a decoded image to channels (see the module header for the rules).
+pub fn convert(
+    img: &DynamicImage,
+    opts: &ReadOptions,
+    mut info: ImageMeta,
+) -> Result<LoadedImage, String> {
     let (w, h) = (img.width() as usize, img.height() as usize);
     let color = img.color();
     let channels = color.channel_count() as usize;
-    let bit_depth = (color.bits_per_pixel() / color.channel_count() as u16) as u8;
-    let name = match (channels, color.has_alpha()) {
-        (1, _) => "grey",
-        (2, _) => "grey+alpha",
-        (3, _) => "rgb",
+    info.bit_depth = (color.bits_per_pixel() / color.channel_count() as u16) as u8;
+    info.color = match channels {
+        1 => "grey",
+        2 => "grey+alpha",
+        3 => "rgb",
         _ => "rgba",
     };
-    let plane: Vec<f32> = if let Some(s) = img.as_flat_samples_u8() {
-        luma(s.samples, channels, |v| v as f32 / 255.0)
+    let colour = channels >= 3;
+    let white_for = |full: u32| match opts.white {
+        Some(wl) if wl >= 1 && wl <= full => wl,
+        _ => full,
+    };
+    let names: Vec<&str> = match (opts.color, colour) {
+        (ColorMode::Luma, _) => vec!["luma"],
+        (ColorMode::Rgb, true) | (ColorMode::Split, true) => vec!["r", "g", "b"],
+        (ColorMode::Rgb, false) => {
+            return Err(format!(
+                "is {} but colour mode rgb needs three colour channels; use --color luma or split",
+                info.color
+            ))
+        }
+        (ColorMode::Split, false) => vec!["grey"],
+    };
+    let out_c = names.len();
+    let mut data = vec![0.0f32; out_c * w * h];
+    if let Some(s) = img.as_flat_samples_u8() {
+        let wl = white_for(255);
+        info.white = Some(wl);
+        fill(&mut data, (w * h, channels, out_c), s.samples, |v| {
+            v as f32 / wl as f32
+        });
     } else if let Some(s) = img.as_flat_samples_u16() {
-        luma(s.samples, channels, |v| v as f32 / 65535.0)
+        let wl = white_for(65535);
+        info.white = Some(wl);
+        fill(&mut data, (w * h, channels, out_c), s.samples, |v| {
+            v as f32 / wl as f32
+        });
     } else if let Some(s) = img.as_flat_samples_f32() {
-        luma(s.samples, channels, |v| v)
+        info.float = true;
+        fill(&mut data, (w * h, channels, out_c), s.samples, |v| v);
     } else {
         return Err(format!(
             "has a sample layout tapmap does not handle ({color:?})"
         ));
-    };
-    if plane.len() != w * h {
-        return Err(format!("decoded {} samples for {w}×{h}", plane.len()));
     }
-    let data = Array3::from_shape_vec((1, h, w), plane).map_err(|e| e.to_string())?;
+    let data = Array3::from_shape_vec((out_c, h, w), data).map_err(|e| e.to_string())?;
     Ok(LoadedImage {
         data,
-        bit_depth,
-        color: name,
+        channel_names: names.into_iter().map(String::from).collect(),
+        meta: info,
     })
 }
 
-fn luma<T: Copy>(samples: &[T], channels: usize, unit: impl Fn(T) -> f32) -> Vec<f32> {
-    match channels {
-        1 | 2 => samples.chunks_exact(channels).map(|p| unit(p[0])).collect(),
-        _ => samples
-            .chunks_exact(channels)
-            .map(|p| BT709[0] * unit(p[0]) + BT709[1] * unit(p[1]) + BT709[2] * unit(p[2]))
-            .collect(),
+/// Writes `out_c` planes of `n` pixels from interleaved samples with `channels`
+/// per pixel: luma for one plane from colour, the first sample for one plane
+/// from grey, r, g, b for three planes.
+fn fill<T: Copy>(
+    data: &mut [f32],
+    (n, channels, out_c): (usize, usize, usize),
+    samples: &[T],
+    unit: impl Fn(T) -> f32,
+) {
+    let px = samples.chunks_exact(channels).take(n);
+    match (out_c, channels >= 3) {
+        (1, true) => data.iter_mut().zip(px).for_each(|(d, p)| {
+            *d = BT709[0] * unit(p[0]) + BT709[1] * unit(p[1]) + BT709[2] * unit(p[2])
+        }),
+        (1, false) => data.iter_mut().zip(px).for_each(|(d, p)| *d = unit(p[0])),
+        _ => {
+            for (i, p) in px.enumerate() {
+                for c in 0..3 {
+                    data[c * n + i] = unit(p[c]);
+                }
+            }
+        }
     }
 }

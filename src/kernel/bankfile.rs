@@ -93,7 +93,7 @@ fn line_col(text: &str, offset: usize) -> (usize, usize) {
 
 /// Parses a bank from TOML text; `origin` names the file in messages.
 pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
-    let err = |message: String| Error::BankFile {
+    let err = |message: String| Error::File {
         path: origin.to_path_buf(),
         message,
     };

@@ -233,6 +233,30 @@ impl Bank {
         Ok(())
     }
 
+    /// SHA-256 (hex) over the bank's canonical taps: the bytes
+    /// `tapmap-bank-v1\n`, the op name and a newline, then per kernel its UTF-8
+    /// name, a zero byte, rows, cols and plane count as u64 little-endian, every
+    /// tap, the scale and the bias as f64 little-endian. Two banks with this
+    /// digest compute the same thing whatever their file looked like.
+    pub fn digest(&self) -> String {
+        use sha2::{Digest, Sha256};
+        let mut h = Sha256::new();
+        h.update(b"tapmap-bank-v1\n");
+        h.update(self.op.name().as_bytes());
+        h.update(b"\n");
+        for k in &self.kernels {
+            h.update(k.name.as_bytes());
+            h.update([0u8]);
+            for n in [k.rows, k.cols, k.planes.len()] {
+                h.update((n as u64).to_le_bytes());
+            }
+            for t in k.planes.iter().flatten().chain([&k.scale, &k.bias]) {
+                h.update(t.to_le_bytes());
+            }
+        }
+        h.finalize().iter().map(|b| format!("{b:02x}")).collect()
+    }
+
     /// Input channels every kernel expects.
     pub fn channels(&self) -> usize {
         self.kernels.first().map_or(0, Kernel::channels)

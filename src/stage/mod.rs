@@ -4,6 +4,7 @@
 pub mod act;
 pub mod pool;
 pub mod recipe;
+pub mod recipefile;
 
 pub use act::Activation;
 pub use pool::{Pool, PoolKind, PoolWindow};

@@ -190,6 +190,78 @@ impl Recipe {
     }
 }
 
+impl Recipe {
+    /// Which output channels are ≥ 0 by construction, given which input channels
+    /// are. A conv channel is when its scale and bias are ≥ 0 and every plane is
+    /// either all ≥ 0 over a non-negative input channel or all zero; relu, abs,
+    /// square and sigmoid make every channel non-negative; other activations and
+    /// pooling keep what they are given.
+    pub fn non_negative_channels(&self, mut nonneg: Vec<bool>) -> Vec<bool> {
+        for stage in &self.stages {
+            match stage {
+                Stage::Conv(c) => {
+                    let non_negative = |k: &crate::kernel::Kernel| {
+                        k.scale >= 0.0
+                            && k.bias >= 0.0
+                            && k.planes.iter().enumerate().all(|(ch, p)| {
+                                let input_ok = nonneg.get(ch).copied().unwrap_or(false);
+                                if input_ok {
+                                    p.iter().all(|t| *t >= 0.0)
+                                } else {
+                                    p.iter().all(|t| *t == 0.0)
+                                }
+                            })
+                    };
+                    nonneg = c.bank.kernels.iter().map(non_negative).collect();
+                }
+                Stage::Act(a) if a.non_negative() => nonneg.iter_mut().for_each(|v| *v = true),
+                Stage::Act(_) | Stage::Pool(_) => {}
+            }
+        }
+        nonneg
+    }
+
+    /// The recipe for `split` colour mode over channels named `channels`: the
+    /// first conv stage's one-plane kernels become one kernel per channel, named
+    /// `kernel@channel`, each reading only its channel.
+    pub fn split_over(&self, channels: &[String]) -> Result<Recipe, Error> {
+        let mut out = self.clone();
+        let Some(Stage::Conv(conv)) = out.stages.iter_mut().find(|s| matches!(s, Stage::Conv(_)))
+        else {
+            return Ok(out);
+        };
+        if conv.bank.channels() != 1 {
+            return Err(Error::Stage(format!(
+                "colour mode split runs one-plane kernels over each channel, but bank '{}' has \
+                 kernels with {} planes (use --color rgb for multi-plane kernels)",
+                conv.bank.name,
+                conv.bank.channels()
+            )));
+        }
+        let n = channels.len();
+        let mut kernels = Vec::with_capacity(conv.bank.kernels.len() * n);
+        for k in &conv.bank.kernels {
+            for (c, name) in channels.iter().enumerate() {
+                let mut kc = k.clone();
+                kc.name = format!("{}@{name}", k.name);
+                kc.planes = (0..n)
+                    .map(|i| {
+                        if i == c {
+                            k.planes[0].clone()
+                        } else {
+                            vec![0.0; k.rows * k.cols]
+                        }
+                    })
+                    .collect();
+                kc.origin = None;
+                kernels.push(kc);
+            }
+        }
+        conv.bank.kernels = kernels;
+        Ok(out)
+    }
+}
+
 fn stage_kind(s: &Stage) -> &'static str {
     match s {
         Stage::Conv(_) => "conv",

@@ -1,0 +1,305 @@
+//! Recipe files: our TOML schema for input handling and a list of stages.
+//!
+//! ```toml
+//! [input]                       # optional
+//! color = "luma"                # luma | rgb | split
+//! white = 4095                  # white level of integer samples (default: full scale)
+//! orientation = "apply"         # apply | ignore (EXIF orientation)
+//!
+//! [[stage]]                     # stages run in the order written
+//! conv = "edges"                # a bank: shipped name, families joined by '+', or a
+//!                               # .toml file (relative to this recipe's folder)
+//! op = "correlate"              # optional: overrides the bank's op
+//! pad = "reflect"               # zero | replicate | reflect | symmetric | wrap (default zero)
+//! extent = "same"               # valid | same | full (default same) …
+//! # pad_width = 2               # … or explicit: N or [top, bottom, left, right]
+//! stride = 1                    # N or [rows, cols]
+//! dilation = 1                  # N or [rows, cols]
+//!
+//! [[stage]]
+//! act = "leaky-relu"            # none | relu | leaky-relu | abs | square | tanh | sigmoid
+//! slope = 0.1                   # leaky-relu only (default 0.01)
+//!
+//! [[stage]]
+//! pool = "max"                  # max | mean
+//! size = 2                      # N, [rows, cols] or "global"
+//! stride = 2                    # default: the size
+//! ```
+//!
+//! Each `[[stage]]` has exactly one of `conv`, `act`, `pool`. Unknown keys are refused
+//! with their line and column.
+
+use std::path::Path;
+
+use serde::Deserialize;
+use toml::Spanned;
+
+use crate::border::PadMode;
+use crate::engine::{ConvOptions, ConvStage};
+use crate::error::Error;
+use crate::geometry::{Extent, PadWidth};
+use crate::io::read::ReadOptions;
+use crate::kernel::builtin::resolve_bank;
+use crate::kernel::Op;
+use crate::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, Stage};
+
+/// A recipe with its input handling.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RecipeSpec {
+    /// How images are read.
+    pub input: ReadOptions,
+    /// The stages.
+    pub recipe: Recipe,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct FileIn {
+    input: Option<InputIn>,
+    #[serde(default)]
+    stage: Vec<Spanned<StageIn>>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct InputIn {
+    color: Option<String>,
+    white: Option<u32>,
+    orientation: Option<String>,
+}
+
+#[derive(Deserialize, Clone, Copy)]
+#[serde(untagged)]
+enum OneOrTwo {
+    One(usize),
+    Two([usize; 2]),
+}
+
+impl OneOrTwo {
+    fn pair(self) -> (usize, usize) {
+        match self {
+            OneOrTwo::One(v) => (v, v),
+            OneOrTwo::Two([a, b]) => (a, b),
+        }
+    }
+}
+
+#[derive(Deserialize, Clone, Copy)]
+#[serde(untagged)]
+enum PadWidthIn {
+    One(usize),
+    Four([usize; 4]),
+}
+
+#[derive(Deserialize)]
+#[serde(untagged)]
+enum PoolSizeIn {
+    Sized(OneOrTwo),
+    Word(String),
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct StageIn {
+    conv: Option<String>,
+    op: Option<String>,
+    pad: Option<String>,
+    extent: Option<String>,
+    pad_width: Option<PadWidthIn>,
+    stride: Option<OneOrTwo>,
+    dilation: Option<OneOrTwo>,
+    act: Option<String>,
+    slope: Option<f32>,
+    pool: Option<String>,
+    size: Option<PoolSizeIn>,
+}
+
+/// 1-based line and column of a byte offset.
+fn line_col(text: &str, offset: usize) -> (usize, usize) {
+    let before = &text[..offset.min(text.len())];
+    let line = before.matches('\n').count() + 1;
+    let col = before
+        .rfind('\n')
+        .map_or(before.len(), |i| before.len() - i - 1)
+        + 1;
+    (line, col)
+}
+
+/// Resolves a `conv = "…"` bank named in a recipe: a path relative to the
+/// recipe's folder when it names a file there, else as `--bank` does.
+pub fn resolve_bank_near(
+    name: &str,
+    recipe_dir: Option<&Path>,
+) -> Result<crate::kernel::Bank, Error> {
+    if let Some(dir) = recipe_dir {
+        let p = dir.join(name);
+        if p.is_file() || (name.ends_with(".toml") && !Path::new(name).is_absolute()) {
+            return resolve_bank(&p.to_string_lossy());
+        }
+    }
+    resolve_bank(name)
+}
+
+/// Parses a recipe; `origin` names the file in messages and locates relative banks.
+pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
+    let err = |m: String| Error::File {
+        path: origin.to_path_buf(),
+        message: m,
+    };
+    let file: FileIn = toml::from_str(text).map_err(|e| {
+        err(match e.span() {
+            Some(s) => {
+                let (l, c) = line_col(text, s.start);
+                format!("line {l}, column {c}: {}", e.message())
+            }
+            None => e.message().to_string(),
+        })
+    })?;
+    let mut input = ReadOptions::default();
+    if let Some(i) = file.input {
+        if let Some(c) = i.color {
+            input.color = c.parse().map_err(&err)?;
+        }
+        if let Some(w) = i.white {
+            if w == 0 {
+                return Err(err("[input] white must be at least 1".into()));
+            }
+            input.white = Some(w);
+        }
+        match i.orientation.as_deref() {
+            None | Some("apply") => {}
+            Some("ignore") => input.apply_orientation = false,
+            Some(o) => {
+                return Err(err(format!(
+                    "[input] orientation '{o}': expected apply or ignore"
+                )))
+            }
+        }
+    }
+    if file.stage.is_empty() {
+        return Err(err(
+            "no [[stage]] tables: a recipe needs at least one stage".into(),
+        ));
+    }
+    let dir = origin.parent();
+    let mut stages = Vec::with_capacity(file.stage.len());
+    for (i, st) in file.stage.into_iter().enumerate() {
+        let (l, c) = line_col(text, st.span().start);
+        let at = |m: String| err(format!("stage {} (line {l}, column {c}): {m}", i + 1));
+        let s = st.into_inner();
+        let kinds = [s.conv.is_some(), s.act.is_some(), s.pool.is_some()];
+        if kinds.iter().filter(|k| **k).count() != 1 {
+            return Err(at("needs exactly one of conv, act or pool".into()));
+        }
+        let stage = if let Some(bank) = &s.conv {
+            if s.slope.is_some() || s.size.is_some() {
+                return Err(at("slope and size belong to act and pool stages".into()));
+            }
+            let bank = resolve_bank_near(bank, dir).map_err(|e| at(e.to_string()))?;
+            let mut o = ConvOptions::default();
+            if let Some(op) = &s.op {
+                o.op = Some(op.parse::<Op>().map_err(&at)?);
+            }
+            if let Some(p) = &s.pad {
+                o.pad = p.parse::<PadMode>().map_err(&at)?;
+            }
+            match (&s.extent, s.pad_width) {
+                (Some(_), Some(_)) => return Err(at("give extent or pad_width, not both".into())),
+                (Some(e), None) => o.extent = e.parse::<Extent>().map_err(&at)?,
+                (None, Some(PadWidthIn::One(n))) => {
+                    o.extent = Extent::Explicit(PadWidth {
+                        top: n,
+                        bottom: n,
+                        left: n,
+                        right: n,
+                    })
+                }
+                (None, Some(PadWidthIn::Four([t, b, l, r]))) => {
+                    o.extent = Extent::Explicit(PadWidth {
+                        top: t,
+                        bottom: b,
+                        left: l,
+                        right: r,
+                    })
+                }
+                (None, None) => {}
+            }
+            o.stride = s.stride.map_or((1, 1), OneOrTwo::pair);
+            o.dilation = s.dilation.map_or((1, 1), OneOrTwo::pair);
+            for (what, (a, b)) in [("stride", o.stride), ("dilation", o.dilation)] {
+                if a == 0 || b == 0 {
+                    return Err(at(format!("{what} is 0; it must be at least 1")));
+                }
+            }
+            Stage::Conv(ConvStage { bank, options: o })
+        } else if let Some(a) = &s.act {
+            if s.op.is_some()
+                || s.pad.is_some()
+                || s.extent.is_some()
+                || s.pad_width.is_some()
+                || s.stride.is_some()
+                || s.dilation.is_some()
+                || s.size.is_some()
+            {
+                return Err(at("an act stage takes only act and slope".into()));
+            }
+            let act = match (a.as_str(), s.slope) {
+                ("leaky-relu", Some(slope)) if slope.is_finite() => Activation::LeakyRelu(slope),
+                (_, Some(_)) => {
+                    return Err(at(
+                        "slope goes with act = \"leaky-relu\" and must be finite".into(),
+                    ))
+                }
+                (name, None) => name.parse::<Activation>().map_err(&at)?,
+            };
+            Stage::Act(act)
+        } else {
+            let kind: PoolKind = s.pool.as_deref().unwrap_or_default().parse().map_err(&at)?;
+            if s.op.is_some()
+                || s.pad.is_some()
+                || s.extent.is_some()
+                || s.pad_width.is_some()
+                || s.dilation.is_some()
+                || s.slope.is_some()
+            {
+                return Err(at("a pool stage takes only pool, size and stride".into()));
+            }
+            let window = match s.size {
+                Some(PoolSizeIn::Word(w)) if w == "global" => {
+                    if s.stride.is_some() {
+                        return Err(at("a global pool has no stride".into()));
+                    }
+                    PoolWindow::Global
+                }
+                Some(PoolSizeIn::Word(w)) => {
+                    return Err(at(format!(
+                        "pool size '{w}': give N, [rows, cols] or \"global\""
+                    )))
+                }
+                other => {
+                    let size = other.map_or((2, 2), |s| match s {
+                        PoolSizeIn::Sized(v) => v.pair(),
+                        PoolSizeIn::Word(_) => (2, 2),
+                    });
+                    let stride = s.stride.map_or(size, OneOrTwo::pair);
+                    if size.0 == 0 || size.1 == 0 || stride.0 == 0 || stride.1 == 0 {
+                        return Err(at("pool size and stride must be at least 1".into()));
+                    }
+                    PoolWindow::Sized { size, stride }
+                }
+            };
+            Stage::Pool(Pool { kind, window })
+        };
+        stages.push(stage);
+    }
+    Ok(RecipeSpec {
+        input,
+        recipe: Recipe { stages },
+    })
+}
+
+/// Reads a recipe file.
+pub fn read_recipe(path: &Path) -> Result<RecipeSpec, Error> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    parse_recipe(&text, path)
+}
