@@ -142,35 +142,137 @@ impl Canvas {
     }
 }
 
+/// An EXIF block (TIFF structure) with orientation, capture time and exposure time.
+fn exif_block(orientation: u16, captured: &str, exposure: (u32, u32)) -> Vec<u8> {
+    use exif::{experimental::Writer, Field, In, Rational, Tag, Value};
+    let fields = [
+        Field {
+            tag: Tag::Orientation,
+            ifd_num: In::PRIMARY,
+            value: Value::Short(vec![orientation]),
+        },
+        Field {
+            tag: Tag::DateTimeOriginal,
+            ifd_num: In::PRIMARY,
+            value: Value::Ascii(vec![captured.as_bytes().to_vec()]),
+        },
+        Field {
+            tag: Tag::ExposureTime,
+            ifd_num: In::PRIMARY,
+            value: Value::Rational(vec![Rational {
+                num: exposure.0,
+                denom: exposure.1,
+            }]),
+        },
+    ];
+    let mut w = Writer::new();
+    for f in &fields {
+        w.push_field(f);
+    }
+    let mut buf = std::io::Cursor::new(Vec::new());
+    w.write(&mut buf, false).expect("EXIF block in memory");
+    buf.into_inner()
+}
+
+/// Saves a colour JPEG whose stored pixels, turned by EXIF `orientation`, show `upright`.
+fn save_oriented_jpeg(
+    path: &Path,
+    upright: &image::RgbImage,
+    orientation: u16,
+    captured: &str,
+) -> Result<(), Box<dyn std::error::Error>> {
+    use image::{codecs::jpeg::JpegEncoder, imageops, ImageEncoder};
+    // Stored = inverse of the display transform applied to the upright scene.
+    let stored = match orientation {
+        1 => upright.clone(),
+        3 => imageops::rotate180(upright),
+        6 => imageops::rotate270(upright),
+        8 => imageops::rotate90(upright),
+        o => return Err(format!("orientation {o} not drawn here").into()),
+    };
+    let mut bytes = Vec::new();
+    let mut enc = JpegEncoder::new_with_quality(&mut bytes, 90);
+    enc.set_exif_metadata(exif_block(orientation, captured, (1, 250)))?;
+    enc.write_image(
+        stored.as_raw(),
+        stored.width(),
+        stored.height(),
+        image::ExtendedColorType::Rgb8,
+    )?;
+    std::fs::write(path, bytes)?;
+    Ok(())
+}
+
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let out = std::env::args()
         .nth(1)
         .unwrap_or_else(|| "sample_data".into());
     let out = Path::new(&out);
-    std::fs::create_dir_all(out)?;
     let (w, h) = (256, 192);
+    let line = out.join("line-a");
+    for d in ["s1-glaze", "s2-edge", "s3-final"] {
+        std::fs::create_dir_all(line.join(d))?;
+    }
+    std::fs::create_dir_all(out.join("handheld"))?;
 
+    // Station S1 (glaze): 12-bit sensor counts in 16-bit PNG and TIFF.
     let mut rng = Rng(0x5A11_0001);
     let mut c = Canvas::tile(w, h, &mut rng);
     c.crack(&mut rng, (60.0, 40.0), 170);
-    c.to_12bit().save(out.join("s1-glaze-0001-crack.png"))?;
+    c.to_12bit()
+        .save(line.join("s1-glaze/tile-0001-crack.png"))?;
 
     let mut rng = Rng(0x5A11_0002);
     let mut c = Canvas::tile(w, h, &mut rng);
     c.pinholes(&mut rng, 9);
-    c.to_12bit().save(out.join("s1-glaze-0002-pinholes.tif"))?;
+    c.to_12bit()
+        .save(line.join("s1-glaze/tile-0002-pinholes.tif"))?;
 
+    let mut rng = Rng(0x5A11_0005);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.glaze_run(90.0, 20, 140);
+    c.to_12bit().save(line.join("s1-glaze/tile-0003-run.png"))?;
+
+    // Station S2 (edge): chipped corners.
     let mut rng = Rng(0x5A11_0003);
     let mut c = Canvas::tile(w, h, &mut rng);
     c.chip(28);
-    c.to_8bit().save(out.join("s2-edge-0003-chip.png"))?;
+    c.to_12bit().save(line.join("s2-edge/tile-0004-chip.png"))?;
 
+    let mut rng = Rng(0x5A11_0006);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.chip(12);
+    c.crack(&mut rng, (200.0, 60.0), 80);
+    c.to_12bit()
+        .save(line.join("s2-edge/tile-0005-chip-crack.tif"))?;
+
+    // Station S3 (final): a clean tile and a pinhole tile, 8-bit grey.
+    let mut rng = Rng(0x5A11_0007);
+    Canvas::tile(w, h, &mut rng)
+        .to_8bit()
+        .save(line.join("s3-final/tile-0006-clean.png"))?;
+    let mut rng = Rng(0x5A11_0008);
+    let mut c = Canvas::tile(w, h, &mut rng);
+    c.pinholes(&mut rng, 4);
+    c.to_8bit()
+        .save(line.join("s3-final/tile-0007-pinholes.png"))?;
+
+    // Handheld camera: one upright scene stored under EXIF orientations 1, 3, 6 and 8.
     let mut rng = Rng(0x5A11_0004);
     let mut c = Canvas::tile(w, h, &mut rng);
-    c.glaze_run(150.0, 25, 120);
+    c.glaze_run(170.0, 25, 120);
     c.crack(&mut rng, (40.0, 150.0), 90);
-    c.to_rgb().save(out.join("s3-final-0004-run.jpg"))?;
+    let upright = c.to_rgb();
+    for (i, o) in [1u16, 3, 6, 8].into_iter().enumerate() {
+        let name = format!("handheld/photo-{:04}-orient{o}.jpg", 11 + i);
+        save_oriented_jpeg(
+            &out.join(name),
+            &upright,
+            o,
+            &format!("2026:11:30 22:{:02}:05", 14 + i),
+        )?;
+    }
 
-    println!("wrote 4 sample captures to {}", out.display());
+    println!("wrote 11 sample captures under {}", out.display());
     Ok(())
 }

@@ -185,7 +185,13 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
         .exif_metadata()
         .map_err(|e| bad(path, format!("cannot read its metadata: {e}")))?;
     if let Some(raw) = exif_raw.as_deref() {
-        read_exif(raw, &mut info).map_err(|m| bad(path, m))?;
+        // An EXIF block that does not parse leaves the orientation unknown: that
+        // fails the image, unless orientation is ignored anyway.
+        if let Err(m) = read_exif(raw, &mut info) {
+            if opts.apply_orientation {
+                return Err(bad(path, m));
+            }
+        }
     }
     if info.orientation.is_none() {
         // TIFF keeps orientation in its own tag rather than an EXIF block.
