@@ -103,3 +103,23 @@ fn sheets_carry_labels_in_the_bitmap_font() {
     draw_text(&mut blank, 0, 0, "I", image::Rgb([255, 255, 255]));
     assert!(blank.pixels().any(|p| p.0 == [255, 255, 255]));
 }
+
+#[test]
+fn csv_columns_match_the_shipped_schemas() {
+    use tapmap::batch::tables::{IMAGES_COLUMNS, STATS_COLUMNS};
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("shared/schemas");
+    for (file, cols) in [
+        ("stats.csv.json", &STATS_COLUMNS[..]),
+        ("images.csv.json", &IMAGES_COLUMNS[..]),
+    ] {
+        let v: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.join(file)).unwrap()).unwrap();
+        let names: Vec<&str> = v["columns"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| c["name"].as_str().unwrap())
+            .collect();
+        assert_eq!(names, cols, "{file}");
+    }
+}
