@@ -847,3 +847,50 @@ fn bad_files_are_recorded_and_leave_no_partial_output() {
     assert!(leftovers.is_empty(), "{leftovers:?}");
     let _: PathBuf = out;
 }
+
+#[test]
+fn float_tiff_maps_read_back_exactly_as_float_input() {
+    let t = TempDir::new().unwrap();
+    let p = t.path().join("src.png");
+    grey8(&p, 19, 11, 4);
+    let out = t.path().join("o");
+    tapmap()
+        .args([
+            "apply",
+            "--bank",
+            "sobel-x+laplace-4",
+            "--save",
+            "maps,tiff",
+            "-q",
+            "-o",
+        ])
+        .arg(&out)
+        .arg(&p)
+        .assert()
+        .success();
+    let maps = npy(&out.join("maps/src.npy"));
+    // A signed float map goes back in as it is: no scaling, no clipping.
+    let back = t.path().join("back");
+    tapmap()
+        .args(["apply", "--bank", "identity", "-q", "-o"])
+        .arg(&back)
+        .arg(out.join("tiff/src/00-sobel-x.tif"))
+        .assert()
+        .success();
+    let again = npy(&back.join("maps/00-sobel-x.npy"));
+    assert!(maps
+        .index_axis(ndarray::Axis(0), 0)
+        .iter()
+        .zip(again.iter())
+        .all(|(a, b)| a.to_bits() == b.to_bits()));
+    assert!(again.iter().any(|v| *v < 0.0));
+    let rows = csv_rows(&back.join("images.csv"));
+    assert_eq!(
+        (
+            rows[0]["bit_depth"].as_str(),
+            rows[0]["sample"].as_str(),
+            rows[0]["white"].as_str()
+        ),
+        ("32", "float", "")
+    );
+}

@@ -177,9 +177,13 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
     limits.max_image_height = Some(MAX_SIDE);
     limits.max_alloc = Some(MAX_ALLOC);
     reader.limits(limits);
-    let mut decoder = reader
-        .into_decoder()
-        .map_err(|e| bad(path, format!("cannot decode: {e}")))?;
+    let mut decoder = match reader.into_decoder() {
+        Ok(d) => d,
+        Err(image::ImageError::Unsupported(_)) if format == image::ImageFormat::Tiff => {
+            return read_grey_float(path, opts);
+        }
+        Err(e) => return Err(bad(path, format!("cannot decode: {e}"))),
+    };
     let mut info = ImageMeta::default();
     let exif_raw = decoder
         .exif_metadata()
@@ -231,6 +235,58 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
         info.orientation_applied = orientation != Orientation::NoTransforms;
     }
     convert(&img, opts, info).map_err(|m| bad(path, m))
+}
+
+/// One-channel float TIFF, which the image crate does not read: decoded with the
+/// `tiff` crate, carried through the same orientation code as an RGB float image
+/// with equal channels, then taken back to one channel.
+fn read_grey_float(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error> {
+    let (w, h, samples, tag) =
+        crate::io::tiff::read_grey_float_tiff(path, MAX_SIDE).map_err(|m| bad(path, m))?;
+    let mut info = ImageMeta {
+        width: w,
+        height: h,
+        orientation: tag,
+        ..ImageMeta::default()
+    };
+    let orientation = match tag {
+        Some(v) if opts.apply_orientation => Orientation::from_exif(v.min(255) as u8).ok_or_else(|| {
+            bad(path, format!("has TIFF orientation {v}, which is not one of the defined values 1–8; use --ignore-orientation"))
+        })?,
+        _ => Orientation::NoTransforms,
+    };
+    let rgb: Vec<f32> = samples.iter().flat_map(|v| [*v, *v, *v]).collect();
+    let buf = image::Rgb32FImage::from_raw(w, h, rgb)
+        .ok_or_else(|| bad(path, "sample count does not match its size"))?;
+    let mut img = DynamicImage::ImageRgb32F(buf);
+    img.apply_orientation(orientation);
+    info.orientation_applied = orientation != Orientation::NoTransforms;
+    let (ow, oh) = (img.width() as usize, img.height() as usize);
+    let grey: Vec<f32> = img
+        .as_flat_samples_f32()
+        .expect("rgb f32")
+        .samples
+        .iter()
+        .step_by(3)
+        .copied()
+        .collect();
+    let name = match opts.color {
+        ColorMode::Luma => "luma",
+        ColorMode::Split => "grey",
+        ColorMode::Rgb => return Err(bad(
+            path,
+            "is grey but colour mode rgb needs three colour channels; use --color luma or split",
+        )),
+    };
+    info.bit_depth = 32;
+    info.float = true;
+    info.color = "grey";
+    let data = Array3::from_shape_vec((1, oh, ow), grey).map_err(|e| bad(path, e.to_string()))?;
+    Ok(LoadedImage {
+        data,
+        channel_names: vec![name.to_string()],
+        meta: info,
+    })
 }
 
 /// Fills orientation, capture time and exposure from a raw EXIF block

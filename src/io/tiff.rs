@@ -19,3 +19,45 @@ pub fn write_f32_tiff(path: &Path, plane: &[f32], w: usize, h: usize) -> Result<
     let bytes = buf.into_inner();
     write_atomic(path, |out| out.write_all(&bytes))
 }
+
+/// A one-channel float TIFF read with the `tiff` crate (the image crate has no
+/// grey float layout): `(width, height, samples, orientation tag)`.
+pub fn read_grey_float_tiff(
+    path: &Path,
+    max_side: u32,
+) -> Result<(u32, u32, Vec<f32>, Option<u16>), String> {
+    use tiff::decoder::{Decoder, DecodingResult, Limits};
+    use tiff::tags::Tag;
+    let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
+    let mut d =
+        Decoder::new(std::io::BufReader::new(f)).map_err(|e| format!("cannot decode: {e}"))?;
+    let (w, h) = d.dimensions().map_err(|e| format!("cannot decode: {e}"))?;
+    if w == 0 || h == 0 {
+        return Err("has zero width or height".into());
+    }
+    if w > max_side || h > max_side {
+        return Err(format!(
+            "is {w}×{h}, over the limit of {max_side} pixels a side"
+        ));
+    }
+    let mut limits = Limits::default();
+    limits.decoding_buffer_size = (w as usize).saturating_mul(h as usize).saturating_mul(8);
+    let mut d = d.with_limits(limits);
+    let orientation = d
+        .find_tag(Tag::Orientation)
+        .ok()
+        .flatten()
+        .and_then(|v| v.into_u16().ok());
+    let samples = match d.read_image().map_err(|e| format!("cannot decode: {e}"))? {
+        DecodingResult::F32(v) => v,
+        DecodingResult::F64(v) => v.into_iter().map(|x| x as f32).collect(),
+        _ => return Err("is a TIFF layout tapmap does not read".into()),
+    };
+    if samples.len() != w as usize * h as usize {
+        return Err(format!(
+            "has {} samples for {w}×{h}; only one-channel float TIFF is read this way",
+            samples.len()
+        ));
+    }
+    Ok((w, h, samples, orientation))
+}
