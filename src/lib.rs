@@ -11,6 +11,7 @@
 
 pub mod batch;
 pub mod border;
+pub mod borders;
 pub mod cli;
 pub mod engine;
 pub mod error;

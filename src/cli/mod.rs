@@ -58,6 +58,16 @@ enum Command {
         tapmap plan --size 1024x1024 --bank blobs --extent valid --stride 2 --pool max --pool-size 2\n  \
         tapmap plan --size 4096x3000 --recipe kernels/line-a-edges.recipe.toml")]
     Plan(PlanArgs),
+    /// Compare pad modes on real images: band where modes disagree, deviation figures,
+    /// difference views, and (with --crop) which mode best stands in for missing pixels.
+    #[command(after_help = "Examples:\n  \
+        tapmap borders --bank edges --out runs/borders sample_data/line-a\n  \
+        tapmap borders --bank gaussian:sigma=2 --crop 24 --out runs/borders-crop sample_data/line-a/s1-glaze\n  \
+        tapmap borders --recipe kernels/pinhole-blobs.recipe.toml --modes zero,reflect,symmetric --out runs/b img.png\n\n\
+        Writes OUT/borders.csv (error by distance from the edge), OUT/bands.csv (measured and\n  \
+        predicted band per edge), OUT/summary.csv, OUT/views/P/NN-channel/MODE.png (|mode − median|,\n  \
+        measured band outlined in amber, predicted in cyan), OUT/plots/P.png and OUT/plot.png.")]
+    Borders(BordersArgs),
     /// Built-in kernels and bank files: list, show, make.
     #[command(subcommand)]
     Bank(BankCommand),
@@ -162,6 +172,50 @@ struct PlanArgs {
     /// Input size, WIDTHxHEIGHT.
     #[arg(long, value_parser = parse_size, value_name = "WxH")]
     size: (usize, usize),
+}
+
+#[derive(Args)]
+struct BordersArgs {
+    #[command(flatten)]
+    stage: StageArgs,
+    /// Pad modes to compare, comma-separated.
+    #[arg(long, default_value = "zero,replicate,reflect,symmetric,wrap", value_parser = parse_modes, value_name = "LIST")]
+    modes: ModeList,
+    /// Two results agree when they differ by at most T (response units).
+    #[arg(long, default_value_t = 1e-6, value_name = "T")]
+    tolerance: f32,
+    /// Also compare each mode with the real surroundings: cut a window N pixels in
+    /// from every side, run it with each mode, compare with the full image's result.
+    #[arg(long, value_name = "N")]
+    crop: Option<usize>,
+    /// Output folder.
+    #[arg(long, short = 'o', value_name = "DIR")]
+    out: PathBuf,
+    /// Print only errors.
+    #[arg(long, short = 'q')]
+    quiet: bool,
+    /// Image files, folders and glob patterns.
+    #[arg(required = true, value_name = "INPUT")]
+    inputs: Vec<PathBuf>,
+}
+
+/// A comma-separated list of distinct pad modes.
+#[derive(Clone, Debug)]
+struct ModeList(Vec<PadMode>);
+
+fn parse_modes(s: &str) -> Result<ModeList, String> {
+    let mut v: Vec<PadMode> = Vec::new();
+    for p in s.split(',').map(str::trim).filter(|p| !p.is_empty()) {
+        let m: PadMode = p.parse()?;
+        if v.contains(&m) {
+            return Err(format!("mode '{p}' given twice"));
+        }
+        v.push(m);
+    }
+    if v.len() < 2 {
+        return Err("give at least two pad modes to compare".into());
+    }
+    Ok(ModeList(v))
 }
 
 #[derive(Subcommand)]
@@ -393,6 +447,7 @@ fn run(cli: Cli) -> Result<i32, Error> {
             print!("{}", report::plan_table((channels, h, w), &plans));
             Ok(EXIT_OK)
         }
+        Command::Borders(b) => borders_cmd(b),
         Command::Bank(BankCommand::List) => {
             print!("{}", report::family_list());
             Ok(EXIT_OK)
@@ -498,6 +553,169 @@ fn apply(a: ApplyArgs) -> Result<i32, Error> {
         );
     }
     Ok(if summary.failed > 0 {
+        EXIT_SOME_FAILED
+    } else {
+        EXIT_OK
+    })
+}
+
+fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
+    use crate::borders::output as bo;
+    let spec = b.stage.spec()?;
+    check_channels(&spec)?;
+    let modes = b.modes.0.clone();
+    if b.tolerance.is_nan() || b.tolerance < 0.0 {
+        return Err(Error::Stage("--tolerance must be a number ≥ 0".into()));
+    }
+    let items = crate::batch::inputs::expand_inputs(&b.inputs, &b.out)?;
+    std::fs::create_dir_all(&b.out).map_err(|e| Error::io(&b.out, e))?;
+    let (mut rows, mut bands, mut summary_rows) = (Vec::new(), Vec::new(), Vec::new());
+    let mut all_curves: Vec<(PadMode, Vec<f64>, usize)> = Vec::new();
+    let (mut ok, mut failed) = (0, 0);
+    let crop = b.crop;
+    for item in &items {
+        let path = item.rel_string();
+        let result = (|| -> Result<(), Error> {
+            if let Some(p) = &item.problem {
+                return Err(Error::Stage(p.clone()));
+            }
+            let img = crate::io::read::read_image(&item.source, &spec.input)?;
+            let recipe = match spec.input.color {
+                ColorMode::Split => spec.recipe.split_over(&img.channel_names)?,
+                _ => spec.recipe.clone(),
+            };
+            let names = recipe.channel_names(img.data.dim().0);
+            let st = crate::borders::study(
+                &recipe,
+                img.data.view(),
+                &names,
+                &modes,
+                b.tolerance,
+                crop,
+                b.stage.engine,
+            )?;
+            let summary = bo::summarise(&st);
+            if !b.quiet {
+                print!("{}", bo::summary_text(&path, &st, &summary));
+            }
+            let best = bo::best(&summary);
+            for (i, m) in summary.iter().enumerate() {
+                let opt = |v: Option<f64>| v.map_or(String::new(), |x| x.to_string());
+                summary_rows.push(vec![
+                    path.clone(),
+                    m.mode.name().to_string(),
+                    m.band.to_string(),
+                    m.mean_dev.to_string(),
+                    m.max_dev.to_string(),
+                    opt(m.crop_mean),
+                    opt(m.crop_max),
+                    (Some(i) == best).to_string(),
+                ]);
+            }
+            bo::borders_rows(&path, &st, &mut rows);
+            bo::band_rows(&path, &st, &mut bands);
+            let stem = item.stem_path();
+            bo::write_difference_views(&b.out.join("views").join(&stem), &st, &modes)?;
+            let curves = bo::curves(&st);
+            let plot = b.out.join("plots").join(&stem).with_extension("png");
+            std::fs::create_dir_all(plot.parent().unwrap_or(&b.out))
+                .map_err(|e| Error::io(&plot, e))?;
+            let what = if crop.is_some() {
+                "crop study: error against the real surroundings"
+            } else {
+                "deviation from the median of all modes"
+            };
+            bo::write_plot(
+                &plot,
+                &format!("{path}: {what}"),
+                "mean |error| (response units)",
+                &curves,
+            )?;
+            for (m, pts) in curves {
+                match all_curves.iter_mut().find(|(mm, _, _)| *mm == m) {
+                    Some((_, acc, n)) => {
+                        if acc.len() < pts.len() {
+                            acc.resize(pts.len(), 0.0);
+                        }
+                        for (a, p) in acc.iter_mut().zip(&pts) {
+                            *a += if p.is_finite() { *p } else { 0.0 };
+                        }
+                        *n += 1;
+                    }
+                    None => all_curves.push((
+                        m,
+                        pts.iter()
+                            .map(|p| if p.is_finite() { *p } else { 0.0 })
+                            .collect(),
+                        1,
+                    )),
+                }
+            }
+            Ok(())
+        })();
+        match result {
+            Ok(()) => ok += 1,
+            Err(e) => {
+                failed += 1;
+                eprintln!(
+                    "tapmap: {}: {}",
+                    item.source.display(),
+                    e.to_string()
+                        .replace(&format!("{}: ", item.source.display()), "")
+                );
+            }
+        }
+    }
+    bo::write_csv(
+        &b.out.join("borders.csv"),
+        &[
+            "path", "study", "channel", "name", "mode", "distance", "mean_abs", "max_abs", "pixels",
+        ],
+        &rows,
+    )?;
+    bo::write_csv(
+        &b.out.join("bands.csv"),
+        &["path", "channel", "name", "edge", "band", "predicted"],
+        &bands,
+    )?;
+    bo::write_csv(
+        &b.out.join("summary.csv"),
+        &[
+            "path",
+            "mode",
+            "band",
+            "mean_dev",
+            "max_dev",
+            "crop_mean",
+            "crop_max",
+            "best",
+        ],
+        &summary_rows,
+    )?;
+    if !all_curves.is_empty() {
+        let curves: Vec<(PadMode, Vec<f64>)> = all_curves
+            .into_iter()
+            .map(|(m, acc, n)| (m, acc.into_iter().map(|v| v / n as f64).collect()))
+            .collect();
+        let what = if crop.is_some() {
+            "all images: error against the real surroundings"
+        } else {
+            "all images: deviation from the median of all modes"
+        };
+        bo::write_plot(
+            &b.out.join("plot.png"),
+            what,
+            "mean |error| (response units)",
+            &curves,
+        )?;
+    }
+    if !b.quiet || failed > 0 {
+        eprintln!(
+            "tapmap: {ok} image(s) studied, {failed} failed; results in {}",
+            b.out.display()
+        );
+    }
+    Ok(if failed > 0 {
         EXIT_SOME_FAILED
     } else {
         EXIT_OK
