@@ -383,13 +383,47 @@ pub fn write_plot(
         .unwrap_or(1)
         .saturating_sub(1)
         .max(1) as f64;
-    let ymax = curves
+    // When the largest errors dwarf the typical mode's (zero padding usually does), a
+    // logarithmic axis keeps every line readable; exact zeros are then left out.
+    let peak = |v: &Vec<f64>| {
+        v.iter()
+            .copied()
+            .filter(|x| x.is_finite())
+            .fold(0.0, f64::max)
+    };
+    let mut peaks: Vec<f64> = curves.iter().map(|(_, v)| peak(v)).collect();
+    peaks.sort_by(|a, b| b.total_cmp(a));
+    let min_pos = curves
         .iter()
         .flat_map(|(_, v)| v.iter().copied())
-        .filter(|v| v.is_finite())
-        .fold(0.0, f64::max);
-    let ymax = if ymax > 0.0 { ymax * 1.08 } else { 1.0 };
-    let (xstep, ystep) = (nice_step(xmax).max(1.0), nice_step(ymax));
+        .filter(|x| x.is_finite() && *x > 0.0)
+        .fold(f64::INFINITY, f64::min);
+    let median_peak = peaks.get(peaks.len() / 2).copied().unwrap_or(0.0);
+    let log = peaks.len() > 1
+        && median_peak > 0.0
+        && peaks[0] / median_peak > 20.0
+        && min_pos.is_finite();
+    let (ylo, ymax) = if log {
+        let lo = min_pos.log10().floor();
+        (lo, peaks[0].log10().ceil().max(lo + 1.0))
+    } else {
+        let m = peaks.first().copied().unwrap_or(0.0);
+        (0.0, if m > 0.0 { m * 1.08 } else { 1.0 })
+    };
+    let yval = |v: f64| match (log, v > 0.0) {
+        (false, _) => Some(v),
+        (true, true) => Some(v.log10()),
+        (true, false) => None,
+    };
+    let y_label = if log {
+        format!("{y_label}, log scale")
+    } else {
+        y_label.to_string()
+    };
+    let (xstep, ystep) = (
+        nice_step(xmax).max(1.0),
+        if log { 1.0 } else { nice_step(ymax) },
+    );
     let mut buf = vec![0u8; (W * H * 3) as usize];
     let mut labels: Vec<(i32, i32, String, bool)> = Vec::new();
     let legend_x;
@@ -402,37 +436,42 @@ pub fn write_plot(
             .margin_right(150)
             .margin_top(36)
             .margin_bottom(52)
-            .build_cartesian_2d(0f64..xmax, 0f64..ymax)
+            .build_cartesian_2d(0f64..xmax, ylo..ymax)
             .map_err(|e| perr(&e))?;
         let grid = RGBColor(222, 220, 212);
         let axis = RGBColor(60, 60, 66);
         let mut x = 0.0;
         while x <= xmax + 1e-9 {
             chart
-                .draw_series(LineSeries::new([(x, 0.0), (x, ymax)], grid))
+                .draw_series(LineSeries::new([(x, ylo), (x, ymax)], grid))
                 .map_err(|e| perr(&e))?;
-            let (px, py) = chart.backend_coord(&(x, 0.0));
+            let (px, py) = chart.backend_coord(&(x, ylo));
             labels.push((px, py + 8, label_num(x), true));
             x += xstep;
         }
-        let mut y = 0.0;
+        let mut y = ylo;
         while y <= ymax + 1e-12 {
             chart
                 .draw_series(LineSeries::new([(0.0, y), (xmax, y)], grid))
                 .map_err(|e| perr(&e))?;
             let (px, py) = chart.backend_coord(&(0.0, y));
-            labels.push((px - 6, py - 4, label_num(y), false));
+            let text = if log {
+                format!("1e{}", y.round() as i64)
+            } else {
+                label_num(y)
+            };
+            labels.push((px - 6, py - 4, text, false));
             y += ystep;
         }
         chart
             .draw_series(LineSeries::new(
-                [(0.0, 0.0), (xmax, 0.0)],
+                [(0.0, ylo), (xmax, ylo)],
                 axis.stroke_width(2),
             ))
             .map_err(|e| perr(&e))?;
         chart
             .draw_series(LineSeries::new(
-                [(0.0, 0.0), (0.0, ymax)],
+                [(0.0, ylo), (0.0, ymax)],
                 axis.stroke_width(2),
             ))
             .map_err(|e| perr(&e))?;
@@ -443,7 +482,7 @@ pub fn write_plot(
                 .iter()
                 .enumerate()
                 .filter(|(_, v)| v.is_finite())
-                .map(|(d, v)| (d as f64, *v))
+                .filter_map(|(d, v)| yval(*v).map(|y| (d as f64, y)))
                 .collect();
             if dashed {
                 chart
@@ -510,6 +549,6 @@ pub fn write_plot(
         xl,
         ink,
     );
-    draw_text(&mut img, 8, 22, y_label, ink);
+    draw_text(&mut img, 8, 22, &y_label, ink);
     write_png(path, img.as_raw(), W, H, image::ExtendedColorType::Rgb8)
 }

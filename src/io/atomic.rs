@@ -27,6 +27,14 @@ pub fn write_atomic(
         fill(&mut w).map_err(|e| Error::io(path, e))?;
         w.flush().map_err(|e| Error::io(path, e))?;
     }
+    // Temporary files are created private (0600); outputs are ordinary files.
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        tmp.as_file()
+            .set_permissions(std::fs::Permissions::from_mode(0o644))
+            .map_err(|e| Error::io(path, e))?;
+    }
     tmp.persist(path).map_err(|e| Error::io(path, e.error))?;
     Ok(())
 }
