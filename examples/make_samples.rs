@@ -203,6 +203,63 @@ fn save_oriented_jpeg(
     Ok(())
 }
 
+/// An invented "learned" first layer: 8 one-channel 7×7 filters, oriented
+/// band-pass (Gabor-like) at four angles and two phases with a little fixed
+/// noise, zero mean, as a small trained network might hold. Returns (weights
+/// out×in×kh×kw, bias).
+fn learned_bank() -> (Vec<f32>, Vec<f32>) {
+    let mut rng = Rng(0x1EA2_0001);
+    let mut w = Vec::with_capacity(8 * 49);
+    for n in 0..8 {
+        let theta = (n % 4) as f64 * std::f64::consts::PI / 4.0;
+        let phase = if n < 4 {
+            0.0
+        } else {
+            std::f64::consts::FRAC_PI_2
+        };
+        let mut k: Vec<f64> = (0..49)
+            .map(|i| {
+                let (y, x) = ((i / 7) as f64 - 3.0, (i % 7) as f64 - 3.0);
+                let xp = x * theta.cos() + y * theta.sin();
+                let yp = -x * theta.sin() + y * theta.cos();
+                (-(xp * xp + 0.5 * yp * yp) / 8.0).exp()
+                    * (2.0 * std::f64::consts::PI * xp / 5.0 + phase).cos()
+                    + 0.04 * (rng.unit() - 0.5)
+            })
+            .collect();
+        let mean = k.iter().sum::<f64>() / 49.0;
+        k.iter_mut().for_each(|v| *v = (*v - mean) * 0.35);
+        w.extend(k.into_iter().map(|v| v as f32));
+    }
+    let bias = (0..8)
+        .map(|n| [0.01f32, -0.02, 0.0, 0.015][n % 4])
+        .collect();
+    (w, bias)
+}
+
+/// A NumPy .npy file (format 1.0, little-endian float32, C order).
+fn npy_f32(shape: &[usize], data: &[f32]) -> Vec<u8> {
+    let dims: Vec<String> = shape.iter().map(|d| d.to_string()).collect();
+    let shape_txt = if dims.len() == 1 {
+        format!("({},)", dims[0])
+    } else {
+        format!("({})", dims.join(", "))
+    };
+    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': {shape_txt}, }}");
+    // The preamble and header together are padded to a multiple of 64 bytes.
+    while (10 + header.len() + 1) % 64 != 0 {
+        header.push(' ');
+    }
+    header.push('\n');
+    let mut out = b"\x93NUMPY\x01\x00".to_vec();
+    out.extend((header.len() as u16).to_le_bytes());
+    out.extend(header.as_bytes());
+    for v in data {
+        out.extend(v.to_le_bytes());
+    }
+    out
+}
+
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let out = std::env::args()
         .nth(1)
@@ -273,6 +330,34 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         )?;
     }
 
-    println!("wrote 11 sample captures under {}", out.display());
+    // An invented learned first layer, as .npy and as safetensors (with bias).
+    std::fs::create_dir_all(out.join("learned"))?;
+    let (w, bias) = learned_bank();
+    std::fs::write(
+        out.join("learned/first-layer.npy"),
+        npy_f32(&[8, 1, 7, 7], &w),
+    )?;
+    let wb: Vec<u8> = w.iter().flat_map(|v| v.to_le_bytes()).collect();
+    let bb: Vec<u8> = bias.iter().flat_map(|v| v.to_le_bytes()).collect();
+    use safetensors::tensor::TensorView;
+    let views = vec![
+        (
+            "conv1.weight".to_string(),
+            TensorView::new(safetensors::Dtype::F32, vec![8, 1, 7, 7], &wb)?,
+        ),
+        (
+            "conv1.bias".to_string(),
+            TensorView::new(safetensors::Dtype::F32, vec![8], &bb)?,
+        ),
+    ];
+    std::fs::write(
+        out.join("learned/first-layer.safetensors"),
+        safetensors::serialize(views, None)?,
+    )?;
+
+    println!(
+        "wrote 11 sample captures and a learned bank under {}",
+        out.display()
+    );
     Ok(())
 }

@@ -18,6 +18,7 @@ pub mod error;
 pub mod geometry;
 pub mod io;
 pub mod kernel;
+pub mod probe;
 pub mod render;
 pub mod stage;
 pub mod stats;

@@ -30,6 +30,7 @@ fn family(spec: &str) -> Bank {
 
 fn taps(rows: &[Vec<f64>]) -> Bank {
     Bank {
+        normalize: None,
         name: "t".into(),
         op: Op::Correlate,
         description: None,

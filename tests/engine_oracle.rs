@@ -53,6 +53,7 @@ fn stage_of(case: &Case) -> ConvStage {
         .collect();
     ConvStage {
         bank: Bank {
+            normalize: None,
             name: "case".into(),
             op: Op::Correlate,
             description: None,
@@ -321,6 +322,7 @@ fn direct_is_bit_identical_for_any_thread_count() {
     };
     let stage = ConvStage {
         bank: Bank {
+            normalize: None,
             name: "b".into(),
             op: Op::Convolve,
             description: None,

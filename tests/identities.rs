@@ -13,6 +13,7 @@ use tapmap::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, Stage};
 fn stage(kernels: Vec<Kernel>, op: Op, pad: PadMode, extent: Extent) -> ConvStage {
     ConvStage {
         bank: Bank {
+            normalize: None,
             name: "t".into(),
             op,
             description: None,

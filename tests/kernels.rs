@@ -191,12 +191,14 @@ fn bank_files_round_trip_exactly() {
         vec![0.5; 8],
     ];
     banks.push(Bank {
+        normalize: None,
         name: "odd values".into(),
         op: Op::Convolve,
         description: Some("quotes \" and \n newlines".into()),
         kernels: vec![k1],
     });
     banks.push(Bank {
+        normalize: None,
         name: "three planes".into(),
         op: Op::Correlate,
         description: None,

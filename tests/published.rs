@@ -17,6 +17,7 @@ use tapmap::stage::{Pool, PoolKind, PoolWindow};
 
 fn one_kernel_bank(k: Kernel) -> Bank {
     Bank {
+        normalize: None,
         name: "t".into(),
         op: Op::Correlate,
         description: None,

@@ -94,6 +94,24 @@ pub fn check_channels(spec: &RecipeSpec) -> Result<(), Error> {
     Ok(())
 }
 
+/// Calls `f(index, item)` for every item on `jobs` worker threads that take items
+/// from a shared counter one at a time, so at most `jobs` items are in flight.
+/// Work inside `f` may use the rayon pool (the conv engine does); the workers are
+/// not rayon threads, so they never pick up another item while waiting for it.
+pub fn for_each_parallel<T: Sync>(items: &[T], jobs: usize, f: impl Fn(usize, &T) + Sync) {
+    let next = AtomicUsize::new(0);
+    let workers = jobs.clamp(1, items.len().max(1));
+    std::thread::scope(|scope| {
+        for _ in 0..workers {
+            scope.spawn(|| loop {
+                let i = next.fetch_add(1, Ordering::Relaxed);
+                let Some(item) = items.get(i) else { break };
+                f(i, item);
+            });
+        }
+    });
+}
+
 /// Makes a name safe as one file-name component.
 pub fn safe_name(name: &str) -> String {
     let s: String = name
@@ -154,24 +172,16 @@ pub fn run_apply(job: &ApplyJob, on_error: &(dyn Fn(&str) + Sync)) -> Result<Sum
         ProgressBar::hidden()
     };
     let table = colormap::table();
-    let next = AtomicUsize::new(0);
     let results: Mutex<Vec<Option<ImageRecord>>> = Mutex::new(vec![None; items.len()]);
-    let workers = job.jobs.clamp(1, items.len().max(1));
-    std::thread::scope(|scope| {
-        for _ in 0..workers {
-            scope.spawn(|| loop {
-                let i = next.fetch_add(1, Ordering::Relaxed);
-                let Some(item) = items.get(i) else { break };
-                let record = process(job, item, &table);
-                if let Err(msg) = &record.status {
-                    bar.suspend(|| on_error(&format!("{}: {msg}", item.source.display())));
-                }
-                results
-                    .lock()
-                    .expect("no worker panics while holding the lock")[i] = Some(record);
-                bar.inc(1);
-            });
+    for_each_parallel(&items, job.jobs, |i, item| {
+        let record = process(job, item, &table);
+        if let Err(msg) = &record.status {
+            bar.suspend(|| on_error(&format!("{}: {msg}", item.source.display())));
         }
+        results
+            .lock()
+            .expect("no worker panics while holding the lock")[i] = Some(record);
+        bar.inc(1);
     });
     bar.finish_and_clear();
     let records: Vec<ImageRecord> = results
@@ -319,7 +329,7 @@ fn write_outputs(
     if job.save.views || job.save.sheets {
         let mut cells = Vec::new();
         if job.save.sheets {
-            cells.push(("source".to_string(), source_picture(img)));
+            cells.push(("source".to_string(), crate::render::input_picture(img)));
         }
         for k in 0..c {
             let m = view::mapping(plane(k), !nonneg[k], job.view.range, job.view.depth16);
@@ -359,38 +369,6 @@ fn write_outputs(
         }
     }
     Ok(())
-}
-
-/// The source image as people see it: r, g, b channels in colour, anything else
-/// as grey; integer inputs as read (0–1), float inputs stretched from min to max.
-fn source_picture(img: &LoadedImage) -> image::RgbImage {
-    let (c, h, w) = img.data.dim();
-    let (lo, hi) = if img.meta.float {
-        let f = img.data.iter().copied().filter(|v| v.is_finite());
-        let lo = f.clone().fold(f32::INFINITY, f32::min);
-        let hi = f.fold(f32::NEG_INFINITY, f32::max);
-        if hi > lo {
-            (lo, hi)
-        } else {
-            (0.0, 1.0)
-        }
-    } else {
-        (0.0, 1.0)
-    };
-    let to8 = |v: f32| (((v - lo) / (hi - lo)).clamp(0.0, 1.0) * 255.0).round() as u8;
-    image::ImageBuffer::from_fn(w as u32, h as u32, |x, y| {
-        let (x, y) = (x as usize, y as usize);
-        if c == 3 {
-            image::Rgb([
-                to8(img.data[[0, y, x]]),
-                to8(img.data[[1, y, x]]),
-                to8(img.data[[2, y, x]]),
-            ])
-        } else {
-            let v = to8(img.data[[0, y, x]]);
-            image::Rgb([v, v, v])
-        }
-    })
 }
 
 /// A value with about three significant digits, for sheet labels.

@@ -68,7 +68,15 @@ enum Command {
         predicted band per edge), OUT/summary.csv, OUT/views/P/NN-channel/MODE.png (|mode − median|,\n  \
         measured band outlined in amber, predicted in cyan), OUT/plots/P.png and OUT/plot.png.")]
     Borders(BordersArgs),
-    /// Built-in kernels and bank files: list, show, make.
+    /// The strongest responses of each kernel across images, with the patches they see.
+    #[command(after_help = "Examples:\n  \
+        tapmap probe --bank sample_data/learned/first-layer.npy --act relu --top 8 --out runs/probe sample_data\n  \
+        tapmap probe --recipe kernels/pinhole-blobs.recipe.toml --top 5 --out runs/pinholes sample_data/line-a\n\n\
+        Writes OUT/probe.csv, OUT/kernels/NN-name.png (one sheet per kernel) and OUT/overview.png.\n\
+        Hits of one kernel in one image never have overlapping receptive fields (they are at least\n\
+        ceil(R/J) output pixels apart in x or y; R receptive field, J stride product).")]
+    Probe(ProbeArgs),
+    /// Built-in kernels and bank files: list, show, make, import, draw.
     #[command(subcommand)]
     Bank(BankCommand),
 }
@@ -218,6 +226,27 @@ fn parse_modes(s: &str) -> Result<ModeList, String> {
     Ok(ModeList(v))
 }
 
+#[derive(Args)]
+struct ProbeArgs {
+    #[command(flatten)]
+    stage: StageArgs,
+    /// Hits kept per kernel.
+    #[arg(long, default_value_t = 9, value_name = "K", value_parser = clap::value_parser!(u32).range(1..))]
+    top: u32,
+    /// Images processed at once [default: all cores].
+    #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    jobs: Option<u32>,
+    /// Output folder.
+    #[arg(long, short = 'o', value_name = "DIR")]
+    out: PathBuf,
+    /// Print only errors.
+    #[arg(long, short = 'q')]
+    quiet: bool,
+    /// Image files, folders and glob patterns.
+    #[arg(required = true, value_name = "INPUT")]
+    inputs: Vec<PathBuf>,
+}
+
 #[derive(Subcommand)]
 enum BankCommand {
     /// List the built-in kernel families with their parameters, and the shipped banks.
@@ -230,6 +259,49 @@ enum BankCommand {
         /// A bank file, a shipped bank, or families joined with '+'.
         #[arg(value_name = "NAME|FILE")]
         bank: String,
+    },
+    /// Import trained weights (.npy, .npz, safetensors) as a bank file.
+    #[command(after_help = "Examples:\n  \
+        tapmap bank import sample_data/learned/first-layer.npy -o learned.toml\n  \
+        tapmap bank import model.safetensors --tensor conv1.weight --bias conv1.bias --mean 0.485,0.456,0.406 --std 0.229,0.224,0.225 -o conv1.toml\n  \
+        tapmap bank import weights.npz --tensor w --layout hwio -o w.toml")]
+    Import {
+        /// The weight file.
+        #[arg(value_name = "FILE")]
+        file: PathBuf,
+        /// Weight tensor (needed when the file holds several).
+        #[arg(long, value_name = "NAME")]
+        tensor: Option<String>,
+        /// Bias tensor (1-D, one value per output channel).
+        #[arg(long, value_name = "NAME")]
+        bias: Option<String>,
+        /// Axis order: oihw (out×in×kh×kw) or hwio (kh×kw×in×out).
+        #[arg(long, default_value = "oihw")]
+        layout: crate::kernel::import::Layout,
+        /// Per-channel mean of the training normalisation, in [0,1] units.
+        #[arg(long, value_parser = parse_floats, value_name = "M,...", allow_hyphen_values = true)]
+        mean: Option<Floats>,
+        /// Per-channel std of the training normalisation, in [0,1] units.
+        #[arg(long, value_parser = parse_floats, value_name = "S,...")]
+        std: Option<Floats>,
+        /// Op to declare (network layers compute correlate).
+        #[arg(long, default_value = "correlate")]
+        op: Op,
+        /// Bank file to write.
+        #[arg(long, short = 'o', value_name = "FILE")]
+        out: PathBuf,
+    },
+    /// Draw a bank's taps as a sheet (PNG), one enlarged cell per kernel.
+    #[command(
+        after_help = "Examples:\n  tapmap bank draw edges -o edges.png\n  tapmap bank draw sample_data/learned/first-layer.safetensors -o learned.png"
+    )]
+    Draw {
+        /// A bank file, weight file, shipped bank, or families joined with '+'.
+        #[arg(value_name = "NAME|FILE")]
+        bank: String,
+        /// PNG to write.
+        #[arg(long, short = 'o', value_name = "FILE")]
+        out: PathBuf,
     },
     /// Write a bank file from built-in families.
     #[command(after_help = "Examples:\n  \
@@ -250,6 +322,23 @@ enum BankCommand {
         #[arg(long, default_value = "correlate")]
         op: Op,
     },
+}
+
+/// A comma-separated list of finite numbers.
+#[derive(Clone, Debug)]
+struct Floats(Vec<f64>);
+
+fn parse_floats(s: &str) -> Result<Floats, String> {
+    s.split(',')
+        .map(|p| {
+            p.trim()
+                .parse::<f64>()
+                .ok()
+                .filter(|v| v.is_finite())
+                .ok_or_else(|| format!("'{p}' is not a finite number"))
+        })
+        .collect::<Result<Vec<_>, _>>()
+        .map(Floats)
 }
 
 fn parse_pair(s: &str) -> Result<(usize, usize), String> {
@@ -448,6 +537,58 @@ fn run(cli: Cli) -> Result<i32, Error> {
             Ok(EXIT_OK)
         }
         Command::Borders(b) => borders_cmd(b),
+        Command::Probe(p) => probe_cmd(p),
+        Command::Bank(BankCommand::Import {
+            file,
+            tensor,
+            bias,
+            layout,
+            mean,
+            std,
+            op,
+            out,
+        }) => {
+            let opts = crate::kernel::import::ImportOptions {
+                tensor,
+                bias,
+                layout,
+                mean: mean.map(|f| f.0),
+                std: std.map(|f| f.0),
+                op: Some(op),
+            };
+            let bank = crate::kernel::import::import_bank(&file, &opts)?;
+            let text = bank_to_toml(&bank)?;
+            crate::io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
+            let k = &bank.kernels[0];
+            println!(
+                "wrote {} ({} kernels of {}×{}×{}, op {}{})",
+                out.display(),
+                bank.kernels.len(),
+                k.channels(),
+                k.rows,
+                k.cols,
+                bank.op,
+                if bank.normalize.is_some() {
+                    ", with input normalisation"
+                } else {
+                    ""
+                }
+            );
+            Ok(EXIT_OK)
+        }
+        Command::Bank(BankCommand::Draw { bank, out }) => {
+            let b = resolve_bank(&bank)?;
+            let img = crate::render::taps::draw_bank(&b);
+            crate::render::write_png(
+                &out,
+                img.as_raw(),
+                img.width(),
+                img.height(),
+                image::ExtendedColorType::Rgb8,
+            )?;
+            println!("wrote {} ({} kernels)", out.display(), b.kernels.len());
+            Ok(EXIT_OK)
+        }
         Command::Bank(BankCommand::List) => {
             print!("{}", report::family_list());
             Ok(EXIT_OK)
@@ -501,6 +642,7 @@ fn make_bank(
             .map_or_else(|| "bank".into(), |s| s.to_string_lossy().into_owned())
     });
     let bank = Bank {
+        normalize: None,
         name,
         op,
         description: None,
@@ -719,5 +861,200 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
         EXIT_SOME_FAILED
     } else {
         EXIT_OK
+    })
+}
+
+fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
+    use crate::probe::{channel_hits, merge, Hit};
+    use crate::render::sheet::{sheet, sheet_with_columns};
+    use std::sync::Mutex;
+    let spec = p.stage.spec()?;
+    check_channels(&spec)?;
+    let k = p.top as usize;
+    let jobs = p.jobs.map_or_else(
+        || std::thread::available_parallelism().map_or(1, |n| n.get()),
+        |j| j as usize,
+    );
+    let _ = rayon::ThreadPoolBuilder::new()
+        .num_threads(jobs)
+        .build_global();
+    let items = crate::batch::inputs::expand_inputs(&p.inputs, &p.out)?;
+    std::fs::create_dir_all(&p.out).map_err(|e| Error::io(&p.out, e))?;
+    // Per channel: (name, best hits). Channel names come from the first image.
+    let best: Mutex<Vec<(String, Vec<Hit>)>> = Mutex::new(Vec::new());
+    let failures: Mutex<Vec<(usize, String)>> = Mutex::new(Vec::new());
+    crate::batch::run::for_each_parallel(&items, jobs, |i, item| {
+        let result = (|| -> Result<(), Error> {
+            if let Some(m) = &item.problem {
+                return Err(Error::Stage(m.clone()));
+            }
+            let img = crate::io::read::read_image(&item.source, &spec.input)?;
+            let recipe = match spec.input.color {
+                ColorMode::Split => spec.recipe.split_over(&img.channel_names)?,
+                _ => spec.recipe.clone(),
+            };
+            let (c, h, w) = img.data.dim();
+            let fields = crate::borders::channel_fields(&recipe, c, h, w)?;
+            let names = recipe.channel_names(c);
+            let maps = recipe.run(img.data.clone(), p.stage.engine)?;
+            let maps = maps.as_standard_layout();
+            let (oc, oh, ow) = maps.dim();
+            let data = maps.as_slice().expect("standard layout");
+            let path = item.rel_string();
+            let hits: Vec<Vec<Hit>> = (0..oc)
+                .map(|ch| {
+                    channel_hits(
+                        &data[ch * oh * ow..(ch + 1) * oh * ow],
+                        ow,
+                        k,
+                        fields[ch],
+                        &img,
+                        &path,
+                    )
+                })
+                .collect();
+            let mut b = best.lock().expect("no panics under the lock");
+            if b.is_empty() {
+                *b = names.iter().map(|n| (n.clone(), Vec::new())).collect();
+            }
+            if b.len() != oc {
+                return Err(Error::Stage(format!(
+                    "gives {oc} channels but earlier images gave {}",
+                    b.len()
+                )));
+            }
+            for (slot, new) in b.iter_mut().zip(hits) {
+                merge(&mut slot.1, new, k);
+            }
+            Ok(())
+        })();
+        if let Err(e) = result {
+            let msg = e
+                .to_string()
+                .replace(&format!("{}: ", item.source.display()), "");
+            failures
+                .lock()
+                .expect("no panics under the lock")
+                .push((i, msg));
+        }
+    });
+    let mut failures = failures.into_inner().expect("workers done");
+    failures.sort();
+    for (i, m) in &failures {
+        eprintln!("tapmap: {}: {m}", items[*i].source.display());
+    }
+    let best = best.into_inner().expect("workers done");
+    let mut rows = Vec::new();
+    let taps = crate::render::colormap::table();
+    let last_bank = spec.recipe.stages.iter().rev().find_map(|s| match s {
+        Stage::Conv(c) => Some(c.bank.clone()),
+        _ => None,
+    });
+    let kernels_dir = p.out.join("kernels");
+    std::fs::create_dir_all(&kernels_dir).map_err(|e| Error::io(&kernels_dir, e))?;
+    let mut overview = Vec::new();
+    for (ch, (name, hits)) in best.iter().enumerate() {
+        for (r, hit) in hits.iter().enumerate() {
+            rows.push(vec![
+                ch.to_string(),
+                name.clone(),
+                (r + 1).to_string(),
+                hit.path.clone(),
+                hit.x.to_string(),
+                hit.y.to_string(),
+                hit.response.to_string(),
+                hit.region.1.to_string(),
+                hit.region.0.to_string(),
+                hit.region.3.to_string(),
+                hit.region.2.to_string(),
+                hit.clipped.to_string(),
+            ]);
+        }
+        let cells: Vec<(String, image::RgbImage)> = hits
+            .iter()
+            .enumerate()
+            .map(|(r, h)| {
+                (
+                    format!(
+                        "#{} {:.4}{}",
+                        r + 1,
+                        h.response,
+                        if h.clipped { " clip" } else { "" }
+                    ),
+                    h.patch.clone(),
+                )
+            })
+            .collect();
+        if !cells.is_empty() {
+            let s = sheet(
+                &format!("{name}: top {} of {} image(s)", cells.len(), items.len()),
+                &cells,
+            );
+            let path = kernels_dir.join(format!(
+                "{ch:02}-{}.png",
+                crate::batch::run::safe_name(name)
+            ));
+            crate::render::write_png(
+                &path,
+                s.as_raw(),
+                s.width(),
+                s.height(),
+                image::ExtendedColorType::Rgb8,
+            )?;
+        }
+        let kernel = last_bank.as_ref().and_then(|b| {
+            let base = name.split('@').next().unwrap_or(name);
+            b.kernels.iter().find(|kk| kk.name == base)
+        });
+        let tap_cell = kernel.map_or_else(
+            || image::RgbImage::new(1, 1),
+            |kk| crate::render::taps::taps_picture(kk, &taps),
+        );
+        overview.push((format!("{name} taps"), tap_cell));
+        for c in 0..k {
+            match cells.get(c) {
+                Some(cell) => overview.push(cell.clone()),
+                None => overview.push((
+                    String::new(),
+                    image::RgbImage::from_pixel(1, 1, image::Rgb([30, 33, 36])),
+                )),
+            }
+        }
+    }
+    if !overview.is_empty() {
+        let s = sheet_with_columns(
+            "probe: each row a kernel, its taps, then its strongest patches",
+            &overview,
+            k + 1,
+        );
+        crate::render::write_png(
+            &p.out.join("overview.png"),
+            s.as_raw(),
+            s.width(),
+            s.height(),
+            image::ExtendedColorType::Rgb8,
+        )?;
+    }
+    crate::borders::output::write_csv(
+        &p.out.join("probe.csv"),
+        &[
+            "channel", "kernel", "rank", "path", "x", "y", "response", "box_x", "box_y", "box_w",
+            "box_h", "clipped",
+        ],
+        &rows,
+    )?;
+    if !p.quiet || !failures.is_empty() {
+        eprintln!(
+            "tapmap: probed {} image(s), {} failed; {} kernel(s), top {k}; results in {}",
+            items.len() - failures.len(),
+            failures.len(),
+            best.len(),
+            p.out.display()
+        );
+    }
+    Ok(if failures.is_empty() {
+        EXIT_OK
+    } else {
+        EXIT_SOME_FAILED
     })
 }

@@ -4,6 +4,9 @@
 //! name = "line-a-edges"          # the bank's name
 //! op = "correlate"               # how the taps are meant: correlate | convolve
 //! description = "free text"      # optional
+//! normalize = { mean = [0.485, 0.456, 0.406], std = [0.229, 0.224, 0.225] }
+//!                                # optional: input normalisation per channel, applied
+//!                                # before the conv stage (learned banks)
 //!
 //! [[kernel]]                     # one table per output channel, in order
 //! name = "sobel-x"
@@ -40,8 +43,16 @@ struct FileIn {
     name: Option<String>,
     op: Option<Op>,
     description: Option<String>,
+    normalize: Option<Spanned<NormalizeIn>>,
     #[serde(default)]
     kernel: Vec<Spanned<KernelIn>>,
+}
+
+#[derive(Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+struct NormalizeIn {
+    mean: Vec<f64>,
+    std: Vec<f64>,
 }
 
 #[derive(Deserialize)]
@@ -62,6 +73,8 @@ struct FileOut<'a> {
     op: Op,
     #[serde(skip_serializing_if = "Option::is_none")]
     description: Option<&'a str>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    normalize: Option<NormalizeIn>,
     kernel: Vec<KernelOut<'a>>,
 }
 
@@ -203,11 +216,24 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
         }
         kernels.push(kernel);
     }
+    let mut normalize = None;
+    if let Some(n) = file.normalize {
+        let span = n.span();
+        let n = n.into_inner();
+        let norm = crate::kernel::Normalize {
+            mean: n.mean,
+            std: n.std,
+        };
+        norm.validate(kernels[0].channels())
+            .map_err(|e| at(span, e.to_string()))?;
+        normalize = Some(norm);
+    }
     let bank = Bank {
         name,
         op: file.op.unwrap_or(Op::Correlate),
         description: file.description,
         kernels,
+        normalize,
     };
     bank.validate().map_err(|e| err(e.to_string()))?;
     Ok(bank)
@@ -250,6 +276,10 @@ pub fn bank_to_toml(bank: &Bank) -> Result<String, Error> {
         name: &bank.name,
         op: bank.op,
         description: bank.description.as_deref(),
+        normalize: bank.normalize.as_ref().map(|n| NormalizeIn {
+            mean: n.mean.clone(),
+            std: n.std.clone(),
+        }),
         kernel,
     };
     let body =

@@ -1,4 +1,5 @@
-//! Resolving `--bank NAME|FILE`: a bank file, a shipped bank, or built-in family
+//! Resolving `--bank NAME|FILE`: a bank file, a weight file (`.npy`, `.npz`,
+//! `.safetensors`, optionally `FILE:TENSOR`, imported as `oihw`), a shipped bank, or built-in family
 //! specs joined with `+` (`sobel-x+sobel-y`, `gaussian:sigma=2`).
 //!
 //! The shipped banks are the files in the repository's `kernels/` folder, compiled
@@ -31,6 +32,13 @@ pub fn shipped_bank(name: &str) -> Option<Result<Bank, Error>> {
 /// Resolves a `--bank` argument: an existing file (or any name ending in `.toml`),
 /// a shipped bank, or `+`-joined family specs (built-ins declare `correlate`).
 pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
+    if let Some((file, tensor)) = crate::kernel::import::is_weight_file(arg) {
+        let opts = crate::kernel::import::ImportOptions {
+            tensor: tensor.map(String::from),
+            ..Default::default()
+        };
+        return crate::kernel::import::import_bank(Path::new(file), &opts);
+    }
     let path = Path::new(arg);
     if path.is_file() || arg.ends_with(".toml") {
         return read_bank(path);
@@ -57,6 +65,7 @@ pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
         kernels.push(spec.build(Some(s))?);
     }
     let bank = Bank {
+        normalize: None,
         name: arg.to_string(),
         op: Op::Correlate,
         description: None,

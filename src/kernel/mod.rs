@@ -16,6 +16,8 @@ pub mod analysis;
 pub mod bankfile;
 pub mod builtin;
 pub mod families;
+pub mod import;
+pub mod tensors;
 
 use std::fmt;
 use std::str::FromStr;
@@ -196,6 +198,50 @@ pub struct Bank {
     pub description: Option<String>,
     /// The kernels; kernel `n` makes output channel `n`.
     pub kernels: Vec<Kernel>,
+    /// Input normalisation the bank was trained with, applied before its conv
+    /// stage: x' = (x − mean_c) / std_c per input channel.
+    pub normalize: Option<Normalize>,
+}
+
+/// Per-channel input normalisation, in the [0, 1] units of the image reader.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Normalize {
+    /// Mean per input channel.
+    pub mean: Vec<f64>,
+    /// Standard deviation per input channel (never 0).
+    pub std: Vec<f64>,
+}
+
+impl Normalize {
+    /// Checks the counts against `channels`, and that every std is finite and non-zero.
+    pub fn validate(&self, channels: usize) -> Result<(), Error> {
+        if self.mean.len() != channels || self.std.len() != channels {
+            return Err(Error::Kernel(format!(
+                "normalisation has {} mean and {} std values but the kernels take {channels} channel(s)",
+                self.mean.len(),
+                self.std.len()
+            )));
+        }
+        if let Some(s) = self.std.iter().find(|s| !s.is_finite() || **s == 0.0) {
+            return Err(Error::Kernel(format!(
+                "normalisation std {s} must be finite and non-zero"
+            )));
+        }
+        if let Some(m) = self.mean.iter().find(|m| !m.is_finite()) {
+            return Err(Error::Kernel(format!(
+                "normalisation mean {m} must be finite"
+            )));
+        }
+        Ok(())
+    }
+
+    /// Applies the normalisation to a `C × H × W` array in place.
+    pub fn apply(&self, x: &mut ndarray::Array3<f32>) {
+        for (c, mut plane) in x.outer_iter_mut().enumerate() {
+            let (m, s) = (self.mean[c] as f32, self.std[c] as f32);
+            plane.mapv_inplace(|v| (v - m) / s);
+        }
+    }
 }
 
 impl Bank {
@@ -221,6 +267,10 @@ impl Bank {
                 k.channels(),
                 self.kernels[0].name
             )));
+        }
+        if let Some(n) = &self.normalize {
+            n.validate(c0)
+                .map_err(|e| Error::Kernel(format!("bank '{}': {e}", self.name)))?;
         }
         let mut names: Vec<&str> = self.kernels.iter().map(|k| k.name.as_str()).collect();
         names.sort_unstable();
@@ -252,6 +302,12 @@ impl Bank {
             }
             for t in k.planes.iter().flatten().chain([&k.scale, &k.bias]) {
                 h.update(t.to_le_bytes());
+            }
+        }
+        if let Some(n) = &self.normalize {
+            h.update(b"normalize");
+            for v in n.mean.iter().chain(&n.std) {
+                h.update(v.to_le_bytes());
             }
         }
         h.finalize().iter().map(|b| format!("{b:02x}")).collect()

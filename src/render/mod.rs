@@ -2,6 +2,7 @@
 
 pub mod colormap;
 pub mod sheet;
+pub mod taps;
 pub mod view;
 
 use std::path::Path;
@@ -52,4 +53,57 @@ pub fn write_view(path: &Path, v: &view::ViewImage) -> Result<(), Error> {
             ExtendedColorType::Rgb8,
         ),
     }
+}
+
+/// The input image as people see it: r, g, b channels in colour, anything else as
+/// grey; integer inputs as read (0–1 to 0–255), float inputs stretched from their
+/// minimum to their maximum.
+pub fn input_picture(img: &crate::io::read::LoadedImage) -> image::RgbImage {
+    let (c, h, w) = img.data.dim();
+    region_picture(img, (0, 0, h, w), c)
+}
+
+/// Display range of an input: (0, 1) for integer samples, min–max for float.
+fn display_range(img: &crate::io::read::LoadedImage) -> (f32, f32) {
+    if img.meta.float {
+        let f = img.data.iter().copied().filter(|v| v.is_finite());
+        let lo = f.clone().fold(f32::INFINITY, f32::min);
+        let hi = f.fold(f32::NEG_INFINITY, f32::max);
+        if hi > lo {
+            return (lo, hi);
+        }
+    }
+    (0.0, 1.0)
+}
+
+/// Pixel colour of background outside the image in patch pictures.
+pub const OUTSIDE: [[u8; 3]; 2] = [[150, 40, 60], [90, 24, 36]];
+
+/// A region of the input, rows y0.. y0+h and columns x0.. x0+w (which may reach
+/// outside the image: those pixels are drawn as a dark red hatch).
+pub fn region_picture(
+    img: &crate::io::read::LoadedImage,
+    (y0, x0, h, w): (isize, isize, usize, usize),
+    channels: usize,
+) -> image::RgbImage {
+    let (_, ih, iw) = img.data.dim();
+    let (lo, hi) = display_range(img);
+    let to8 = |v: f32| (((v - lo) / (hi - lo)).clamp(0.0, 1.0) * 255.0).round() as u8;
+    image::ImageBuffer::from_fn(w as u32, h as u32, |x, y| {
+        let (yy, xx) = (y0 + y as isize, x0 + x as isize);
+        if yy < 0 || xx < 0 || yy as usize >= ih || xx as usize >= iw {
+            return image::Rgb(OUTSIDE[((x + y) / 2 % 2) as usize]);
+        }
+        let (yy, xx) = (yy as usize, xx as usize);
+        if channels == 3 {
+            image::Rgb([
+                to8(img.data[[0, yy, xx]]),
+                to8(img.data[[1, yy, xx]]),
+                to8(img.data[[2, yy, xx]]),
+            ])
+        } else {
+            let v = to8(img.data[[0, yy, xx]]);
+            image::Rgb([v, v, v])
+        }
+    })
 }

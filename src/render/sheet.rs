@@ -52,10 +52,16 @@ pub fn fit(img: &RgbImage) -> RgbImage {
     }
 }
 
-/// Lays out labelled pictures in a grid under a title.
+/// Lays out labelled pictures in a near-square grid under a title.
 pub fn sheet(title: &str, cells: &[(String, RgbImage)]) -> RgbImage {
+    let n = cells.len().max(1);
+    sheet_with_columns(title, cells, (n as f64).sqrt().ceil() as usize)
+}
+
+/// Lays out labelled pictures in a grid of `cols` columns under a title.
+pub fn sheet_with_columns(title: &str, cells: &[(String, RgbImage)], cols: usize) -> RgbImage {
     let n = cells.len().max(1) as u32;
-    let cols = (n as f64).sqrt().ceil() as u32;
+    let cols = (cols.max(1) as u32).min(n);
     let rows = n.div_ceil(cols);
     let fitted: Vec<(String, RgbImage)> = cells.iter().map(|(l, i)| (l.clone(), fit(i))).collect();
     let cw = fitted.iter().map(|(_, i)| i.width()).max().unwrap_or(CELL);

@@ -156,6 +156,9 @@ impl Recipe {
                 Stage::Conv(conv) => {
                     let (c, h, w) = x.dim();
                     let p = conv.prepare(c, h, w).map_err(ctx)?;
+                    if let Some(n) = &conv.bank.normalize {
+                        n.apply(&mut x);
+                    }
                     run_prepared(&p, &x, engine).map_err(ctx)?
                 }
                 Stage::Act(a) => {
@@ -200,6 +203,9 @@ impl Recipe {
         for stage in &self.stages {
             match stage {
                 Stage::Conv(c) => {
+                    if c.bank.normalize.is_some() {
+                        nonneg.iter_mut().for_each(|v| *v = false);
+                    }
                     let non_negative = |k: &crate::kernel::Kernel| {
                         k.scale >= 0.0
                             && k.bias >= 0.0

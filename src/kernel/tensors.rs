@@ -1,0 +1,479 @@
+//! Reading weight tensors from NumPy `.npy` / `.npz` files and safetensors files.
+//!
+//! - `.npy` follows the format as NumPy documents it (numpy.lib.format): the magic
+//!   `\x93NUMPY`, a major/minor version (1.0: 2-byte little-endian header length;
+//!   2.0 and 3.0: 4-byte), a header that is a Python dict literal with `descr`,
+//!   `fortran_order` and `shape`, then the raw data. This parser is written here
+//!   because ndarray-npy reads neither float16 nor headers on their own (needed to
+//!   list a file's tensors without reading their data).
+//! - `.npz` is a zip archive of `.npy` members (`numpy.savez`, stored or deflated).
+//! - safetensors: an 8-byte little-endian header length, a JSON header of
+//!   name → {dtype, shape, data_offsets}, then the buffer; read with the
+//!   `safetensors` crate.
+//!
+//! dtypes float16, bfloat16, float32 and float64 become f32 (via the `half` crate for
+//! the 16-bit ones); byte order as the descriptor says. Every size is checked
+//! against the bytes present before anything is allocated.
+
+use std::io::Read;
+use std::path::Path;
+
+use crate::error::Error;
+
+/// Largest weight file read, in bytes.
+pub const MAX_FILE: u64 = 1 << 30;
+
+/// A tensor read from a file, converted to f32, row-major (C order).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Tensor {
+    /// Name in the file (`array` for a lone `.npy`).
+    pub name: String,
+    /// Shape.
+    pub shape: Vec<usize>,
+    /// The stored dtype, as the file names it.
+    pub dtype: String,
+    /// Values, C order.
+    pub data: Vec<f32>,
+}
+
+/// Name, shape and dtype of a tensor, without its data.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TensorInfo {
+    /// Name.
+    pub name: String,
+    /// Shape.
+    pub shape: Vec<usize>,
+    /// Stored dtype.
+    pub dtype: String,
+}
+
+impl std::fmt::Display for TensorInfo {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let dims: Vec<String> = self.shape.iter().map(usize::to_string).collect();
+        write!(f, "{} [{}] {}", self.name, dims.join("×"), self.dtype)
+    }
+}
+
+fn err(path: &Path, m: impl Into<String>) -> Error {
+    Error::File {
+        path: path.to_path_buf(),
+        message: m.into(),
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Elem {
+    F16,
+    BF16,
+    F32,
+    F64,
+}
+
+impl Elem {
+    fn size(self) -> usize {
+        match self {
+            Elem::F16 | Elem::BF16 => 2,
+            Elem::F32 => 4,
+            Elem::F64 => 8,
+        }
+    }
+}
+
+fn convert(bytes: &[u8], elem: Elem, big_endian: bool) -> Vec<f32> {
+    let n = elem.size();
+    bytes
+        .chunks_exact(n)
+        .map(|c| {
+            let mut b = [0u8; 8];
+            b[..n].copy_from_slice(c);
+            if big_endian {
+                b[..n].reverse();
+            }
+            match elem {
+                Elem::F16 => half::f16::from_le_bytes([b[0], b[1]]).to_f32(),
+                Elem::BF16 => half::bf16::from_le_bytes([b[0], b[1]]).to_f32(),
+                Elem::F32 => f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
+                Elem::F64 => f64::from_le_bytes(b) as f32,
+            }
+        })
+        .collect()
+}
+
+/// A parsed `.npy` header.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NpyHeader {
+    /// `descr`, e.g. `<f4`.
+    pub descr: String,
+    /// `fortran_order`.
+    pub fortran: bool,
+    /// `shape`.
+    pub shape: Vec<usize>,
+    /// Byte offset of the data.
+    pub data_offset: usize,
+}
+
+/// Parses the header of `.npy` bytes (see the module header).
+pub fn parse_npy_header(bytes: &[u8]) -> Result<NpyHeader, String> {
+    if bytes.len() < 10 || &bytes[..6] != b"\x93NUMPY" {
+        return Err("is not a NumPy .npy file (no \\x93NUMPY magic)".into());
+    }
+    let (major, minor) = (bytes[6], bytes[7]);
+    let (len, start) = match major {
+        1 => (u16::from_le_bytes([bytes[8], bytes[9]]) as usize, 10usize),
+        2 | 3 => {
+            if bytes.len() < 12 {
+                return Err("is truncated inside its header length".into());
+            }
+            (
+                u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]) as usize,
+                12,
+            )
+        }
+        _ => {
+            return Err(format!(
+                "has .npy format version {major}.{minor}; tapmap reads 1.0, 2.0 and 3.0"
+            ))
+        }
+    };
+    let end = start
+        .checked_add(len)
+        .filter(|e| *e <= bytes.len())
+        .ok_or_else(|| {
+            format!(
+                "claims a {len}-byte header but holds only {} bytes after the preamble",
+                bytes.len().saturating_sub(start)
+            )
+        })?;
+    let text = std::str::from_utf8(&bytes[start..end])
+        .map_err(|_| "has a header that is not text".to_string())?;
+    let field = |key: &str| -> Result<&str, String> {
+        let k = text
+            .find(&format!("'{key}'"))
+            .ok_or_else(|| format!("header lacks '{key}': {}", text.trim()))?;
+        let rest = &text[k + key.len() + 2..];
+        let colon = rest
+            .find(':')
+            .ok_or_else(|| format!("header has no value for '{key}'"))?;
+        Ok(rest[colon + 1..].trim_start())
+    };
+    let d = field("descr")?;
+    let q = d
+        .chars()
+        .next()
+        .filter(|c| *c == '\'' || *c == '"')
+        .ok_or("header's descr is not a string")?;
+    let descr = d[1..].split(q).next().unwrap_or_default().to_string();
+    let f = field("fortran_order")?;
+    let fortran = if f.starts_with("True") {
+        true
+    } else if f.starts_with("False") {
+        false
+    } else {
+        return Err("header's fortran_order is neither True nor False".into());
+    };
+    let s = field("shape")?;
+    let open = s.strip_prefix('(').ok_or("header's shape is not a tuple")?;
+    let close = open.find(')').ok_or("header's shape tuple is not closed")?;
+    let shape = open[..close]
+        .split(',')
+        .map(str::trim)
+        .filter(|p| !p.is_empty())
+        .map(|p| {
+            p.trim_end_matches('L')
+                .parse::<usize>()
+                .map_err(|_| format!("header's shape has '{p}'"))
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    Ok(NpyHeader {
+        descr,
+        fortran,
+        shape,
+        data_offset: end,
+    })
+}
+
+fn elem_of(descr: &str) -> Result<(Elem, bool), String> {
+    let (order, ty) = descr.split_at(descr.len().min(1));
+    let big = match order {
+        "<" | "=" | "|" => false,
+        ">" => true,
+        _ => return Err(format!("dtype '{descr}' has no byte-order mark")),
+    };
+    let elem = match ty {
+        "f2" | "e" => Elem::F16,
+        "f4" => Elem::F32,
+        "f8" => Elem::F64,
+        "bfloat16" => Elem::BF16,
+        other => {
+            return Err(format!(
+                "has dtype '{other}'; weights must be float16, bfloat16, float32 or float64"
+            ))
+        }
+    };
+    Ok((elem, big))
+}
+
+fn count(shape: &[usize]) -> Result<usize, String> {
+    shape
+        .iter()
+        .try_fold(1usize, |a, d| a.checked_mul(*d))
+        .ok_or_else(|| "has a shape whose size overflows".to_string())
+}
+
+/// Reads a tensor from `.npy` bytes.
+pub fn npy_tensor(bytes: &[u8], name: &str) -> Result<Tensor, String> {
+    let h = parse_npy_header(bytes)?;
+    let (elem, big) = elem_of(&h.descr)?;
+    let n = count(&h.shape)?;
+    let need = n
+        .checked_mul(elem.size())
+        .ok_or("has a shape whose byte size overflows")?;
+    let have = bytes.len() - h.data_offset;
+    if need > have {
+        return Err(format!(
+            "claims {need} bytes of data ({:?} {}) but holds {have}",
+            h.shape, h.descr
+        ));
+    }
+    let mut data = convert(&bytes[h.data_offset..h.data_offset + need], elem, big);
+    if h.fortran && h.shape.len() > 1 {
+        data = fortran_to_c(&data, &h.shape);
+    }
+    Ok(Tensor {
+        name: name.to_string(),
+        shape: h.shape,
+        dtype: h.descr,
+        data,
+    })
+}
+
+/// Reorders column-major (Fortran) data into row-major order.
+fn fortran_to_c(data: &[f32], shape: &[usize]) -> Vec<f32> {
+    let nd = shape.len();
+    let mut out = vec![0.0f32; data.len()];
+    let mut idx = vec![0usize; nd];
+    for v in out.iter_mut() {
+        // Fortran offset of the current C-order index.
+        let mut off = 0;
+        let mut stride = 1;
+        for d in 0..nd {
+            off += idx[d] * stride;
+            stride *= shape[d];
+        }
+        *v = data[off];
+        for d in (0..nd).rev() {
+            idx[d] += 1;
+            if idx[d] < shape[d] {
+                break;
+            }
+            idx[d] = 0;
+        }
+    }
+    out
+}
+
+fn read_limited(path: &Path) -> Result<Vec<u8>, Error> {
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if meta.len() > MAX_FILE {
+        return Err(err(
+            path,
+            format!(
+                "is {} bytes, over the {MAX_FILE}-byte limit for weight files",
+                meta.len()
+            ),
+        ));
+    }
+    std::fs::read(path).map_err(|e| Error::io(path, e))
+}
+
+enum Format {
+    Npy,
+    Npz,
+    SafeTensors,
+}
+
+fn format_of(path: &Path, bytes: &[u8]) -> Result<Format, Error> {
+    if bytes.starts_with(b"\x93NUMPY") {
+        return Ok(Format::Npy);
+    }
+    if bytes.starts_with(b"PK\x03\x04") || bytes.starts_with(b"PK\x05\x06") {
+        return Ok(Format::Npz);
+    }
+    if bytes.len() >= 9 && bytes[8] == b'{' {
+        return Ok(Format::SafeTensors);
+    }
+    Err(err(
+        path,
+        "is not a weight file tapmap reads (.npy, .npz or safetensors)",
+    ))
+}
+
+fn npz_members<'a>(
+    path: &Path,
+    bytes: &'a [u8],
+) -> Result<zip::ZipArchive<std::io::Cursor<&'a [u8]>>, Error> {
+    zip::ZipArchive::new(std::io::Cursor::new(bytes))
+        .map_err(|e| err(path, format!("is not a readable .npz archive: {e}")))
+}
+
+fn member_name(n: &str) -> String {
+    n.strip_suffix(".npy").unwrap_or(n).to_string()
+}
+
+/// Lists the tensors in a weight file.
+pub fn list_tensors(path: &Path) -> Result<Vec<TensorInfo>, Error> {
+    let bytes = read_limited(path)?;
+    match format_of(path, &bytes)? {
+        Format::Npy => {
+            let h = parse_npy_header(&bytes).map_err(|m| err(path, m))?;
+            Ok(vec![TensorInfo {
+                name: "array".into(),
+                shape: h.shape,
+                dtype: h.descr,
+            }])
+        }
+        Format::Npz => {
+            let mut z = npz_members(path, &bytes)?;
+            let mut out = Vec::new();
+            for i in 0..z.len() {
+                let mut f = z
+                    .by_index(i)
+                    .map_err(|e| err(path, format!("member {i}: {e}")))?;
+                let name = member_name(f.name());
+                let mut head = Vec::new();
+                (&mut f)
+                    .take(65_536 + 12)
+                    .read_to_end(&mut head)
+                    .map_err(|e| err(path, format!("{name}: {e}")))?;
+                let h =
+                    parse_npy_header(&head).map_err(|m| err(path, format!("member {name} {m}")))?;
+                out.push(TensorInfo {
+                    name,
+                    shape: h.shape,
+                    dtype: h.descr,
+                });
+            }
+            Ok(out)
+        }
+        Format::SafeTensors => {
+            let st = safetensors::SafeTensors::deserialize(&bytes)
+                .map_err(|e| err(path, format!("is not a readable safetensors file: {e}")))?;
+            let mut out: Vec<TensorInfo> = st
+                .tensors()
+                .into_iter()
+                .map(|(n, v)| TensorInfo {
+                    name: n,
+                    shape: v.shape().to_vec(),
+                    dtype: format!("{:?}", v.dtype()),
+                })
+                .collect();
+            out.sort_by(|a, b| a.name.cmp(&b.name));
+            Ok(out)
+        }
+    }
+}
+
+/// Reads one tensor (by name; `None` for a lone `.npy`, or when the file holds
+/// exactly one 4-D tensor). Several candidates and no name is an error listing them.
+pub fn read_tensor(path: &Path, name: Option<&str>) -> Result<Tensor, Error> {
+    let infos = list_tensors(path)?;
+    let chosen = match name {
+        Some(n) => infos
+            .iter()
+            .find(|t| t.name == n)
+            .map(|t| t.name.clone())
+            .ok_or_else(|| {
+                err(
+                    path,
+                    format!(
+                        "has no tensor '{n}'; it holds: {}",
+                        infos
+                            .iter()
+                            .map(|t| t.to_string())
+                            .collect::<Vec<_>>()
+                            .join("; ")
+                    ),
+                )
+            })?,
+        None => {
+            let four: Vec<&TensorInfo> = infos.iter().filter(|t| t.shape.len() == 4).collect();
+            match (infos.len(), four.len()) {
+                (1, _) => infos[0].name.clone(),
+                (_, 1) => four[0].name.clone(),
+                _ => {
+                    return Err(err(
+                        path,
+                        format!(
+                            "holds {} tensors; name one with --tensor (or FILE:TENSOR): {}",
+                            infos.len(),
+                            infos
+                                .iter()
+                                .map(|t| t.to_string())
+                                .collect::<Vec<_>>()
+                                .join("; ")
+                        ),
+                    ))
+                }
+            }
+        }
+    };
+    let bytes = read_limited(path)?;
+    match format_of(path, &bytes)? {
+        Format::Npy => npy_tensor(&bytes, &chosen).map_err(|m| err(path, m)),
+        Format::Npz => {
+            let mut z = npz_members(path, &bytes)?;
+            let member = format!("{chosen}.npy");
+            let idx = z
+                .index_for_name(&member)
+                .or_else(|| z.index_for_name(&chosen))
+                .ok_or_else(|| err(path, format!("has no member {member}")))?;
+            let mut f = z
+                .by_index(idx)
+                .map_err(|e| err(path, format!("{chosen}: {e}")))?;
+            if f.size() > MAX_FILE {
+                return Err(err(
+                    path,
+                    format!("member {chosen} claims {} bytes", f.size()),
+                ));
+            }
+            let mut buf = Vec::new();
+            (&mut f)
+                .take(MAX_FILE)
+                .read_to_end(&mut buf)
+                .map_err(|e| err(path, format!("member {chosen}: {e}")))?;
+            npy_tensor(&buf, &chosen).map_err(|m| err(path, format!("member {chosen} {m}")))
+        }
+        Format::SafeTensors => {
+            let st = safetensors::SafeTensors::deserialize(&bytes)
+                .map_err(|e| err(path, format!("is not a readable safetensors file: {e}")))?;
+            let v = st
+                .tensor(&chosen)
+                .map_err(|e| err(path, format!("{chosen}: {e}")))?;
+            use safetensors::Dtype;
+            let elem = match v.dtype() {
+                Dtype::F16 => Elem::F16,
+                Dtype::BF16 => Elem::BF16,
+                Dtype::F32 => Elem::F32,
+                Dtype::F64 => Elem::F64,
+                other => return Err(err(path, format!("tensor {chosen} has dtype {other:?}; weights must be F16, BF16, F32 or F64"))),
+            };
+            let n = count(v.shape()).map_err(|m| err(path, m))?;
+            if v.data().len() != n * elem.size() {
+                return Err(err(
+                    path,
+                    format!(
+                        "tensor {chosen} holds {} bytes for shape {:?}",
+                        v.data().len(),
+                        v.shape()
+                    ),
+                ));
+            }
+            Ok(Tensor {
+                name: chosen.clone(),
+                shape: v.shape().to_vec(),
+                dtype: format!("{:?}", v.dtype()),
+                data: convert(v.data(), elem, false),
+            })
+        }
+    }
+}

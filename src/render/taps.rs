@@ -1,0 +1,117 @@
+//! Pictures of kernels' taps: one pixel per tap, enlarged with nearest neighbour
+//! in sheets so each tap is a visible square.
+//!
+//! Each kernel is scaled symmetrically around zero by its own largest |tap| m.
+//! One-plane kernels use the diverging scale (zero at its light centre); three-
+//! plane kernels are drawn in colour, channel c = 128 + 127·t_c/m, so mid-grey
+//! means zero; other plane counts show their planes side by side.
+
+use image::{Rgb, RgbImage};
+
+use crate::kernel::{Bank, Kernel};
+use crate::render::colormap;
+use crate::render::sheet::{draw_text, sheet};
+
+/// Largest |tap| over all planes (1 for an all-zero kernel).
+pub fn extreme(k: &Kernel) -> f64 {
+    let m = k
+        .planes
+        .iter()
+        .flatten()
+        .fold(0.0f64, |a, t| a.max(t.abs()));
+    if m > 0.0 {
+        m
+    } else {
+        1.0
+    }
+}
+
+/// The taps of one kernel, one pixel per tap.
+pub fn taps_picture(k: &Kernel, table: &[[u8; 3]]) -> RgbImage {
+    let m = extreme(k);
+    let (h, w) = (k.rows as u32, k.cols as u32);
+    let div = |t: f64| Rgb(table[(127.5 + 127.5 * (t / m).clamp(-1.0, 1.0)).round() as usize]);
+    if k.channels() == 3 {
+        return RgbImage::from_fn(w, h, |x, y| {
+            let i = (y * w + x) as usize;
+            let c = |p: usize| {
+                (128.0 + 127.0 * (k.planes[p][i] / m))
+                    .round()
+                    .clamp(0.0, 255.0) as u8
+            };
+            Rgb([c(0), c(1), c(2)])
+        });
+    }
+    let n = k.channels() as u32;
+    let gap = u32::from(n > 1);
+    RgbImage::from_fn(n * w + (n - 1) * gap, h, |x, y| {
+        let (p, px) = (x / (w + gap), x % (w + gap));
+        if px >= w {
+            return Rgb([30, 33, 36]);
+        }
+        div(k.planes[p as usize][(y * w + px) as usize])
+    })
+}
+
+/// A sheet of every kernel of a bank, with a legend of the scale below.
+pub fn draw_bank(bank: &Bank) -> RgbImage {
+    let table = colormap::table();
+    let cells: Vec<(String, RgbImage)> = bank
+        .kernels
+        .iter()
+        .map(|k| {
+            (
+                format!("{} +-{}", k.name, short(extreme(k))),
+                taps_picture(k, &table),
+            )
+        })
+        .collect();
+    let title = format!(
+        "bank {}: {} kernel(s), {}",
+        bank.name,
+        bank.kernels.len(),
+        bank.op
+    );
+    let grid = sheet(&title, &cells);
+    let legend_h = 46;
+    let mut out = RgbImage::from_pixel(
+        grid.width().max(300),
+        grid.height() + legend_h,
+        Rgb([30, 33, 36]),
+    );
+    image::imageops::replace(&mut out, &grid, 0, 0);
+    let (x0, y0) = (8u32, grid.height() + 4);
+    let ink = Rgb([232, 230, 222]);
+    let three = bank.kernels.first().is_some_and(|k| k.channels() == 3);
+    for x in 0..256u32 {
+        let t = x as f64 / 255.0 * 2.0 - 1.0;
+        let c = if three {
+            let v = (128.0 + 127.0 * t).round() as u8;
+            Rgb([v, v, v])
+        } else {
+            Rgb(table[x as usize])
+        };
+        for y in 0..12 {
+            out.put_pixel(x0 + x, y0 + y, c);
+        }
+    }
+    draw_text(&mut out, x0, y0 + 16, "-max", ink);
+    draw_text(&mut out, x0 + 124, y0 + 16, "0", ink);
+    draw_text(&mut out, x0 + 224, y0 + 16, "+max", ink);
+    let note = if three {
+        "rgb planes, grey = 0"
+    } else {
+        "each kernel: own +-max"
+    };
+    draw_text(&mut out, x0, y0 + 28, note, ink);
+    out
+}
+
+fn short(v: f64) -> String {
+    if (0.01..1000.0).contains(&v) {
+        let s = format!("{v:.3}");
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        format!("{v:.2e}")
+    }
+}
