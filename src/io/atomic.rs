@@ -8,7 +8,8 @@ use std::path::Path;
 use crate::error::Error;
 
 /// Writes `bytes` produced by `fill` to `path` atomically (temporary file in the
-/// same folder, then rename); on failure no file is left at `path`.
+/// same folder, then rename); on failure no file is left at `path`. The folder
+/// is created if missing.
 pub fn write_atomic(
     path: &Path,
     fill: impl FnOnce(&mut dyn Write) -> std::io::Result<()>,
@@ -17,6 +18,7 @@ pub fn write_atomic(
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
         .unwrap_or(Path::new("."));
+    std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, e))?;
     let tmp = tempfile::Builder::new()
         .prefix(".tapmap-")
         .suffix(".part")
