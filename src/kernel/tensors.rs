@@ -322,10 +322,14 @@ fn member_name(n: &str) -> String {
 
 /// Lists the tensors in a weight file.
 pub fn list_tensors(path: &Path) -> Result<Vec<TensorInfo>, Error> {
-    let bytes = read_limited(path)?;
-    match format_of(path, &bytes)? {
+    list_tensors_in(&read_limited(path)?, path)
+}
+
+/// Lists the tensors in the bytes of a weight file; `path` names it in messages.
+pub fn list_tensors_in(bytes: &[u8], path: &Path) -> Result<Vec<TensorInfo>, Error> {
+    match format_of(path, bytes)? {
         Format::Npy => {
-            let h = parse_npy_header(&bytes).map_err(|m| err(path, m))?;
+            let h = parse_npy_header(bytes).map_err(|m| err(path, m))?;
             Ok(vec![TensorInfo {
                 name: "array".into(),
                 shape: h.shape,
@@ -333,7 +337,7 @@ pub fn list_tensors(path: &Path) -> Result<Vec<TensorInfo>, Error> {
             }])
         }
         Format::Npz => {
-            let mut z = npz_members(path, &bytes)?;
+            let mut z = npz_members(path, bytes)?;
             let mut out = Vec::new();
             for i in 0..z.len() {
                 let mut f = z
@@ -356,7 +360,7 @@ pub fn list_tensors(path: &Path) -> Result<Vec<TensorInfo>, Error> {
             Ok(out)
         }
         Format::SafeTensors => {
-            let st = safetensors::SafeTensors::deserialize(&bytes)
+            let st = safetensors::SafeTensors::deserialize(bytes)
                 .map_err(|e| err(path, format!("is not a readable safetensors file: {e}")))?;
             let mut out: Vec<TensorInfo> = st
                 .tensors()
@@ -376,7 +380,12 @@ pub fn list_tensors(path: &Path) -> Result<Vec<TensorInfo>, Error> {
 /// Reads one tensor (by name; `None` for a lone `.npy`, or when the file holds
 /// exactly one 4-D tensor). Several candidates and no name is an error listing them.
 pub fn read_tensor(path: &Path, name: Option<&str>) -> Result<Tensor, Error> {
-    let infos = list_tensors(path)?;
+    read_tensor_in(&read_limited(path)?, path, name)
+}
+
+/// Like [`read_tensor`], from the bytes of a weight file (the fuzz targets use it).
+pub fn read_tensor_in(bytes: &[u8], path: &Path, name: Option<&str>) -> Result<Tensor, Error> {
+    let infos = list_tensors_in(bytes, path)?;
     let chosen = match name {
         Some(n) => infos
             .iter()
@@ -417,11 +426,10 @@ pub fn read_tensor(path: &Path, name: Option<&str>) -> Result<Tensor, Error> {
             }
         }
     };
-    let bytes = read_limited(path)?;
-    match format_of(path, &bytes)? {
-        Format::Npy => npy_tensor(&bytes, &chosen).map_err(|m| err(path, m)),
+    match format_of(path, bytes)? {
+        Format::Npy => npy_tensor(bytes, &chosen).map_err(|m| err(path, m)),
         Format::Npz => {
-            let mut z = npz_members(path, &bytes)?;
+            let mut z = npz_members(path, bytes)?;
             let member = format!("{chosen}.npy");
             let idx = z
                 .index_for_name(&member)
@@ -444,7 +452,7 @@ pub fn read_tensor(path: &Path, name: Option<&str>) -> Result<Tensor, Error> {
             npy_tensor(&buf, &chosen).map_err(|m| err(path, format!("member {chosen} {m}")))
         }
         Format::SafeTensors => {
-            let st = safetensors::SafeTensors::deserialize(&bytes)
+            let st = safetensors::SafeTensors::deserialize(bytes)
                 .map_err(|e| err(path, format!("is not a readable safetensors file: {e}")))?;
             let v = st
                 .tensor(&chosen)
