@@ -138,10 +138,7 @@ fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>
                     e.io_error()
                         .map_or_else(|| e.to_string(), |io| io.to_string())
                 };
-                let rel = path
-                    .strip_prefix(base)
-                    .map(Path::to_path_buf)
-                    .unwrap_or_else(|_| path.clone());
+                let rel = rel_below(&path, base);
                 out.push(InputItem {
                     source: path,
                     rel,
@@ -159,17 +156,20 @@ fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>
         if !has_image_extension(entry.path()) || ex.excludes(entry.path()) {
             continue;
         }
-        let rel = entry
-            .path()
-            .strip_prefix(base)
-            .map(Path::to_path_buf)
-            .unwrap_or_else(|_| entry.path().into());
+        let rel = rel_below(entry.path(), base);
         out.push(InputItem {
             source: entry.path().to_path_buf(),
             rel,
             problem: None,
         });
     }
+}
+
+/// `p` relative to `root`, or `p` itself when it is not below it.
+fn rel_below(p: &Path, root: &Path) -> PathBuf {
+    p.strip_prefix(root)
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|_| p.to_path_buf())
 }
 
 /// Expands the inputs (see the module header). Errors: a bad pattern, nothing to
@@ -187,10 +187,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
                 match p {
                     Ok(p) if p.is_dir() => walk_folder(&p, &root, &ex, &mut items),
                     Ok(p) if has_image_extension(&p) && !ex.excludes(&p) => {
-                        let rel = p
-                            .strip_prefix(&root)
-                            .map(Path::to_path_buf)
-                            .unwrap_or_else(|_| p.clone());
+                        let rel = rel_below(&p, &root);
                         items.push(InputItem {
                             source: p,
                             rel,
@@ -200,10 +197,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
                     Ok(_) => {}
                     Err(e) => {
                         let p = e.path().to_path_buf();
-                        let rel = p
-                            .strip_prefix(&root)
-                            .map(Path::to_path_buf)
-                            .unwrap_or_else(|_| p.clone());
+                        let rel = rel_below(&p, &root);
                         items.push(InputItem {
                             source: p,
                             rel,

@@ -111,13 +111,7 @@ pub fn channel_fields(
                 fields = if Some(i) == last_conv {
                     p.kernels.iter().map(|k| through(&k.geometry)).collect()
                 } else {
-                    let widest = p
-                        .kernels
-                        .iter()
-                        .max_by_key(|k| {
-                            k.geometry.rows.effective_kernel() * k.geometry.cols.effective_kernel()
-                        })
-                        .expect("a prepared stage has kernels");
+                    let widest = p.widest();
                     vec![through(&widest.geometry); p.kernels.len()]
                 };
                 shape = (p.kernels.len(), p.out_height, p.out_width);

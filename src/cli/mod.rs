@@ -501,6 +501,28 @@ impl StageArgs {
     }
 }
 
+/// Exit status after a run over inputs: 1 when any failed.
+fn status(failed: usize) -> i32 {
+    if failed > 0 {
+        EXIT_SOME_FAILED
+    } else {
+        EXIT_OK
+    }
+}
+
+/// Threads to use (`--jobs`, default all cores); sizes the rayon pool the conv
+/// engine runs on to match, so nothing is oversubscribed.
+fn thread_count(jobs: Option<u32>) -> usize {
+    let n = jobs.map_or_else(
+        || std::thread::available_parallelism().map_or(1, |n| n.get()),
+        |j| j as usize,
+    );
+    let _ = rayon::ThreadPoolBuilder::new()
+        .num_threads(n)
+        .build_global();
+    n
+}
+
 /// Runs the command line; returns the exit status.
 pub fn main() -> i32 {
     let cli = match Cli::try_parse() {
@@ -654,14 +676,8 @@ fn make_bank(
 
 fn apply(a: ApplyArgs) -> Result<i32, Error> {
     let spec = a.stage.spec()?;
-    let jobs = a.jobs.map_or_else(
-        || std::thread::available_parallelism().map_or(1, |n| n.get()),
-        |j| j as usize,
-    );
     // One pool for the engine's row bands; image workers are separate (see batch::run).
-    let _ = rayon::ThreadPoolBuilder::new()
-        .num_threads(jobs)
-        .build_global();
+    let jobs = thread_count(a.jobs);
     let job = ApplyJob {
         spec,
         engine: a.stage.engine,
@@ -694,11 +710,7 @@ fn apply(a: ApplyArgs) -> Result<i32, Error> {
             if a.save.manifest { ", manifest.json" } else { "" }
         );
     }
-    Ok(if summary.failed > 0 {
-        EXIT_SOME_FAILED
-    } else {
-        EXIT_OK
-    })
+    Ok(status(summary.failed))
 }
 
 fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
@@ -857,11 +869,7 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
             b.out.display()
         );
     }
-    Ok(if failed > 0 {
-        EXIT_SOME_FAILED
-    } else {
-        EXIT_OK
-    })
+    Ok(status(failed))
 }
 
 fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
@@ -871,13 +879,7 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
     let spec = p.stage.spec()?;
     check_channels(&spec)?;
     let k = p.top as usize;
-    let jobs = p.jobs.map_or_else(
-        || std::thread::available_parallelism().map_or(1, |n| n.get()),
-        |j| j as usize,
-    );
-    let _ = rayon::ThreadPoolBuilder::new()
-        .num_threads(jobs)
-        .build_global();
+    let jobs = thread_count(p.jobs);
     let items = crate::batch::inputs::expand_inputs(&p.inputs, &p.out)?;
     std::fs::create_dir_all(&p.out).map_err(|e| Error::io(&p.out, e))?;
     // Per channel: (name, best hits). Channel names come from the first image.
@@ -1052,9 +1054,5 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
             p.out.display()
         );
     }
-    Ok(if failures.is_empty() {
-        EXIT_OK
-    } else {
-        EXIT_SOME_FAILED
-    })
+    Ok(status(failures.len()))
 }

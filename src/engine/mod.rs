@@ -120,6 +120,15 @@ impl PreparedStage {
             .ok_or_else(|| Error::Geometry("output size overflows".into()))
     }
 
+    /// The kernel with the largest dilated footprint: it sets the stage's receptive
+    /// field and margins.
+    pub fn widest(&self) -> &PreparedKernel {
+        self.kernels
+            .iter()
+            .max_by_key(|k| k.geometry.rows.effective_kernel() * k.geometry.cols.effective_kernel())
+            .expect("a prepared stage has kernels")
+    }
+
     /// Multiply-adds of the whole stage.
     pub fn multiply_adds(&self) -> u128 {
         let outs = (self.out_height * self.out_width) as u128;

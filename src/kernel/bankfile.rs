@@ -93,8 +93,8 @@ struct KernelOut<'a> {
     bias: f64,
 }
 
-/// 1-based line and column of a byte offset.
-fn line_col(text: &str, offset: usize) -> (usize, usize) {
+/// 1-based line and column of a byte offset (bank and recipe files).
+pub(crate) fn line_col(text: &str, offset: usize) -> (usize, usize) {
     let before = &text[..offset.min(text.len())];
     let line = before.matches('\n').count() + 1;
     let col = before
@@ -102,6 +102,17 @@ fn line_col(text: &str, offset: usize) -> (usize, usize) {
         .map_or(before.len(), |i| before.len() - i - 1)
         + 1;
     (line, col)
+}
+
+/// A TOML parse error as "line L, column C: message".
+pub(crate) fn toml_message(text: &str, e: &toml::de::Error) -> String {
+    match e.span() {
+        Some(s) => {
+            let (l, c) = line_col(text, s.start);
+            format!("line {l}, column {c}: {}", e.message())
+        }
+        None => e.message().to_string(),
+    }
 }
 
 /// Parses a bank from TOML text; `origin` names the file in messages.
@@ -114,16 +125,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
         let (l, c) = line_col(text, span.start);
         err(format!("line {l}, column {c}: {message}"))
     };
-    let file: FileIn = toml::from_str(text).map_err(|e| {
-        let msg = match e.span() {
-            Some(s) => {
-                let (l, c) = line_col(text, s.start);
-                format!("line {l}, column {c}: {}", e.message())
-            }
-            None => e.message().to_string(),
-        };
-        err(msg)
-    })?;
+    let file: FileIn = toml::from_str(text).map_err(|e| err(toml_message(text, &e)))?;
     let stem = origin.file_stem().map(|s| s.to_string_lossy().into_owned());
     let name = file.name.or(stem).unwrap_or_else(|| "bank".into());
     if file.kernel.is_empty() {

@@ -74,13 +74,7 @@ impl Recipe {
                 Stage::Conv(conv) => {
                     let p = conv.prepare(shape.0, shape.1, shape.2).map_err(ctx)?;
                     // The widest kernel sets the receptive field and the unused margin.
-                    let widest = p
-                        .kernels
-                        .iter()
-                        .max_by_key(|k| {
-                            k.geometry.rows.effective_kernel() * k.geometry.cols.effective_kernel()
-                        })
-                        .expect("a prepared stage has kernels");
+                    let widest = p.widest();
                     let (gr, gc) = (widest.geometry.rows, widest.geometry.cols);
                     let o = &conv.options;
                     let what = format!(

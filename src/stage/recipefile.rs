@@ -39,6 +39,7 @@ use crate::engine::{ConvOptions, ConvStage};
 use crate::error::Error;
 use crate::geometry::{Extent, PadWidth};
 use crate::io::read::ReadOptions;
+use crate::kernel::bankfile::{line_col, toml_message};
 use crate::kernel::builtin::resolve_bank;
 use crate::kernel::Op;
 use crate::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, Stage};
@@ -114,17 +115,6 @@ struct StageIn {
     size: Option<PoolSizeIn>,
 }
 
-/// 1-based line and column of a byte offset.
-fn line_col(text: &str, offset: usize) -> (usize, usize) {
-    let before = &text[..offset.min(text.len())];
-    let line = before.matches('\n').count() + 1;
-    let col = before
-        .rfind('\n')
-        .map_or(before.len(), |i| before.len() - i - 1)
-        + 1;
-    (line, col)
-}
-
 /// Resolves a `conv = "…"` bank named in a recipe: a path relative to the
 /// recipe's folder when it names a file there, else as `--bank` does.
 pub fn resolve_bank_near(
@@ -146,15 +136,7 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
         path: origin.to_path_buf(),
         message: m,
     };
-    let file: FileIn = toml::from_str(text).map_err(|e| {
-        err(match e.span() {
-            Some(s) => {
-                let (l, c) = line_col(text, s.start);
-                format!("line {l}, column {c}: {}", e.message())
-            }
-            None => e.message().to_string(),
-        })
-    })?;
+    let file: FileIn = toml::from_str(text).map_err(|e| err(toml_message(text, &e)))?;
     let mut input = ReadOptions::default();
     if let Some(i) = file.input {
         if let Some(c) = i.color {
