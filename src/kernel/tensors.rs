@@ -193,7 +193,10 @@ pub fn parse_npy_header(bytes: &[u8]) -> Result<NpyHeader, String> {
 }
 
 fn elem_of(descr: &str) -> Result<(Elem, bool), String> {
-    let (order, ty) = descr.split_at(descr.len().min(1));
+    // The first character is the byte-order mark; split on a char boundary, since
+    // a damaged header may hold any UTF-8 there.
+    let first = descr.chars().next().map_or(0, char::len_utf8);
+    let (order, ty) = descr.split_at(first);
     let big = match order {
         "<" | "=" | "|" => false,
         ">" => true,
