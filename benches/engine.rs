@@ -30,7 +30,7 @@ fn engines(c: &mut Criterion) {
         let img = image(size, size);
         let st = stage(bank);
         g.throughput(Throughput::Elements((size * size) as u64));
-        for engine in [Engine::Reference, Engine::Direct] {
+        for engine in [Engine::Reference, Engine::Direct, Engine::Separable] {
             g.bench_with_input(
                 BenchmarkId::new(engine.name(), format!("{bank}/{size}")),
                 &img,
@@ -51,5 +51,27 @@ fn engines(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, engines);
+/// Where separable passes overtake the direct strategy: Gaussians of growing
+/// radius on one 1024×1024 image (sets `engine::SEPARABLE_FROM`).
+fn separable_threshold(c: &mut Criterion) {
+    let mut g = c.benchmark_group("separable_threshold");
+    g.sample_size(10);
+    let img = image(1024, 1024);
+    for radius in [1, 2, 3, 4, 5, 6] {
+        let st = stage(&format!(
+            "gaussian:sigma={},radius={radius}",
+            radius as f64 / 2.0
+        ));
+        for engine in [Engine::Direct, Engine::Separable] {
+            g.bench_with_input(
+                BenchmarkId::new(engine.name(), format!("{0}x{0}", 2 * radius + 1)),
+                &img,
+                |b, img| b.iter(|| run_conv(&st, img, engine).expect("run")),
+            );
+        }
+    }
+    g.finish();
+}
+
+criterion_group!(benches, engines, separable_threshold);
 criterion_main!(benches);

@@ -20,7 +20,7 @@ use tapmap::engine::{run_conv, ConvOptions, ConvStage, Engine};
 use tapmap::geometry::{Extent, PadWidth};
 use tapmap::kernel::{Bank, Kernel, Op};
 
-const ENGINES: [Engine; 2] = [Engine::Reference, Engine::Direct];
+const ENGINES: [Engine; 3] = [Engine::Reference, Engine::Direct, Engine::Separable];
 
 #[derive(Clone, Debug)]
 struct Case {
@@ -238,6 +238,101 @@ proptest! {
     fn strategies_equal_the_oracle_on_random_cases(case in case_strategy()) {
         check(&case).map_err(TestCaseError::fail)?;
     }
+}
+
+/// Cases whose kernels are rank 1 in every plane (outer products, some planes
+/// zero), so that the separable strategy really runs.
+fn separable_case_strategy() -> impl Strategy<Value = Case> {
+    (
+        case_strategy(),
+        prop::collection::vec(
+            (
+                prop::collection::vec(-2.0f64..2.0, 1..7),
+                prop::collection::vec(-2.0f64..2.0, 1..7),
+                0u8..6,
+            ),
+            1..4,
+        ),
+    )
+        .prop_map(|(mut case, factors)| {
+            let (kh, kw) = (factors[0].0.len(), factors[0].1.len());
+            case.kernels = factors
+                .iter()
+                .map(|(u, v, zero)| OracleKernel {
+                    rows: kh,
+                    cols: kw,
+                    planes: (0..case.channels)
+                        .map(|c| {
+                            (0..kh)
+                                .flat_map(|y| (0..kw).map(move |x| (y, x)))
+                                .map(|(y, x)| {
+                                    if *zero as usize == c + 1 {
+                                        0.0
+                                    } else {
+                                        u[y % u.len()] * v[x % v.len()] * (c + 1) as f64
+                                    }
+                                })
+                                .collect()
+                        })
+                        .collect(),
+                    scale: 1.0,
+                    bias: 0.25,
+                })
+                .collect();
+            case
+        })
+}
+
+proptest! {
+    #![proptest_config(Config { cases: 300, rng_seed: RngSeed::Fixed(0x5E9A), failure_persistence: None, ..Config::default() })]
+    #[test]
+    fn separable_strategy_equals_the_oracle_on_rank_one_kernels(case in separable_case_strategy()) {
+        check(&case).map_err(TestCaseError::fail)?;
+    }
+}
+
+#[test]
+fn the_planner_chooses_by_the_bank_not_by_the_result() {
+    use tapmap::engine::choose;
+    use tapmap::kernel::builtin::resolve_bank;
+    let plan = |bank: &str| {
+        let stage = ConvStage {
+            bank: resolve_bank(bank).unwrap(),
+            options: ConvOptions::default(),
+        };
+        let p = stage.prepare(1, 64, 64).unwrap();
+        choose(&p, Engine::Auto).engine
+    };
+    assert_eq!(plan("gaussian:sigma=2"), Engine::Separable);
+    assert_eq!(
+        plan("smooth"),
+        Engine::Direct,
+        "box 3×3 is rank 1 but below the threshold"
+    );
+    assert_eq!(
+        plan("binomial:size=9+gaussian:sigma=1.5"),
+        Engine::Separable
+    );
+    assert_eq!(
+        plan("binomial:size=7"),
+        Engine::Direct,
+        "7×7 is below the measured crossover"
+    );
+    assert_eq!(plan("edges"), Engine::Direct, "laplace-8 is rank 2");
+    assert_eq!(
+        plan("sobel-x+sobel-y+scharr-x+scharr-y+prewitt-x+prewitt-y+laplace-4+laplace-8"),
+        Engine::Direct,
+        "an 8-kernel 3×3 bank"
+    );
+    assert_eq!(plan("log:sigma=2"), Engine::Direct, "LoG is not separable");
+    let stage = ConvStage {
+        bank: resolve_bank("log").unwrap(),
+        options: ConvOptions::default(),
+    };
+    let p = stage.prepare(1, 16, 16).unwrap();
+    let c = choose(&p, Engine::Separable);
+    assert_eq!(c.engine, Engine::Direct);
+    assert!(c.reason.contains("not rank 1"));
 }
 
 /// Deterministic small values so that the grid needs no RNG.

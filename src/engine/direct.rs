@@ -13,8 +13,7 @@
 
 use rayon::prelude::*;
 
-use crate::border::pad_plane_into;
-use crate::engine::{PreparedKernel, PreparedStage, Strategy};
+use crate::engine::{pad_input, PreparedKernel, PreparedStage, Strategy};
 
 /// Padded rows, whole-row multiply-adds per tap.
 pub struct Direct;
@@ -31,7 +30,6 @@ impl Strategy for Direct {
     }
 
     fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
-        let (h, w) = (st.height, st.width);
         let plane_out = st.out_height * st.out_width;
         // Kernels with the same padding share one padded copy of the input.
         let mut padded: Vec<f32> = Vec::new();
@@ -42,19 +40,7 @@ impl Strategy for Direct {
             let pads = (gr.pad_before, gr.pad_after, gc.pad_before, gc.pad_after);
             let (ph, pw) = (gr.padded(), gc.padded());
             if padded_for != Some(pads) {
-                padded.clear();
-                for c in 0..st.channels {
-                    let plane = &input[c * h * w..(c + 1) * h * w];
-                    pad_plane_into(
-                        plane,
-                        (h, w),
-                        st.pad,
-                        (gr.pad_before, gr.pad_after),
-                        (gc.pad_before, gc.pad_after),
-                        &mut plane_buf,
-                    );
-                    padded.extend_from_slice(&plane_buf);
-                }
+                pad_input(st, &k.geometry, input, &mut padded, &mut plane_buf);
                 padded_for = Some(pads);
             }
             let dst = &mut out[n * plane_out..(n + 1) * plane_out];
