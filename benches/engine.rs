@@ -73,5 +73,64 @@ fn separable_threshold(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, engines, separable_threshold);
+/// Where the matrix product overtakes the direct strategy, by bank size
+/// (sets `engine::MATMUL_FROM`): random banks of N kernels × C channels × k×k.
+fn matmul_threshold(c: &mut Criterion) {
+    use tapmap::kernel::{Bank, Kernel, Op};
+    let mut g = c.benchmark_group("matmul_threshold");
+    g.sample_size(10);
+    for (n, ch, k, size) in [
+        (8, 1, 3, 1024),
+        (16, 1, 3, 1024),
+        (32, 1, 3, 1024),
+        (64, 1, 3, 512),
+        (8, 3, 5, 512),
+        (16, 3, 7, 512),
+        (64, 3, 7, 512),
+    ] {
+        let kernels = (0..n)
+            .map(|i| Kernel {
+                name: format!("k{i}"),
+                rows: k,
+                cols: k,
+                planes: (0..ch)
+                    .map(|c| {
+                        (0..k * k)
+                            .map(|t| (((i * 31 + c * 7 + t * 13) % 17) as f64 - 8.0) / 8.0)
+                            .collect()
+                    })
+                    .collect(),
+                scale: 1.0,
+                bias: 0.0,
+                origin: None,
+            })
+            .collect();
+        let st = ConvStage {
+            bank: Bank {
+                name: "b".into(),
+                op: Op::Correlate,
+                description: None,
+                kernels,
+                normalize: None,
+            },
+            options: ConvOptions {
+                pad: PadMode::Zero,
+                ..ConvOptions::default()
+            },
+        };
+        let img = Array3::from_shape_fn((ch, size, size), |(c, y, x)| {
+            ((x * 31 + y * 17 + c * 5) % 251) as f32 / 251.0
+        });
+        for engine in [Engine::Direct, Engine::Matmul] {
+            g.bench_with_input(
+                BenchmarkId::new(engine.name(), format!("{n}x{ch}x{k}x{k}/{size}")),
+                &img,
+                |b, img| b.iter(|| run_conv(&st, img, engine).expect("run")),
+            );
+        }
+    }
+    g.finish();
+}
+
+criterion_group!(benches, engines, separable_threshold, matmul_threshold);
 criterion_main!(benches);

@@ -20,7 +20,12 @@ use tapmap::engine::{run_conv, ConvOptions, ConvStage, Engine};
 use tapmap::geometry::{Extent, PadWidth};
 use tapmap::kernel::{Bank, Kernel, Op};
 
-const ENGINES: [Engine; 3] = [Engine::Reference, Engine::Direct, Engine::Separable];
+const ENGINES: [Engine; 4] = [
+    Engine::Reference,
+    Engine::Direct,
+    Engine::Separable,
+    Engine::Matmul,
+];
 
 #[derive(Clone, Debug)]
 struct Case {
@@ -325,6 +330,52 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
         "an 8-kernel 3×3 bank"
     );
     assert_eq!(plan("log:sigma=2"), Engine::Direct, "LoG is not separable");
+    // Learned banks: many kernels over several channels go to the matrix product.
+    let learned = |n: usize, c: usize, k: usize| {
+        let kernels = (0..n)
+            .map(|i| Kernel {
+                name: format!("f{i}"),
+                rows: k,
+                cols: k,
+                planes: (0..c).map(|j| ramp(k * k, i + j)).collect(),
+                scale: 1.0,
+                bias: 0.0,
+                origin: None,
+            })
+            .collect();
+        let stage = ConvStage {
+            bank: Bank {
+                normalize: None,
+                name: "l".into(),
+                op: Op::Correlate,
+                description: None,
+                kernels,
+            },
+            options: ConvOptions {
+                extent: Extent::Explicit(PadWidth {
+                    top: 3,
+                    bottom: 3,
+                    left: 3,
+                    right: 3,
+                }),
+                stride: (2, 2),
+                ..ConvOptions::default()
+            },
+        };
+        choose(&stage.prepare(c, 64, 64).unwrap(), Engine::Auto).engine
+    };
+    assert_eq!(learned(64, 3, 7), Engine::Matmul, "a 64×3×7×7 bank");
+    assert_eq!(learned(8, 1, 3), Engine::Direct, "an 8-kernel 3×3 bank");
+    let mixed = ConvStage {
+        bank: resolve_bank("smooth").unwrap(),
+        options: ConvOptions::default(),
+    };
+    let c = choose(&mixed.prepare(1, 32, 32).unwrap(), Engine::Matmul);
+    assert_eq!(
+        c.engine,
+        Engine::Direct,
+        "kernels of several sizes cannot share one product"
+    );
     let stage = ConvStage {
         bank: resolve_bank("log").unwrap(),
         options: ConvOptions::default(),

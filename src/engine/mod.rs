@@ -15,6 +15,7 @@
 //! ```
 
 pub mod direct;
+pub mod matmul;
 pub mod reference;
 pub mod separable;
 
@@ -311,6 +312,8 @@ pub enum Engine {
     Direct,
     /// Rank-1 kernels as a horizontal then a vertical 1-D pass.
     Separable,
+    /// Image-to-columns in row bands and a matrix product per band.
+    Matmul,
 }
 
 impl Engine {
@@ -321,6 +324,7 @@ impl Engine {
             Engine::Reference => "reference",
             Engine::Direct => "direct",
             Engine::Separable => "separable",
+            Engine::Matmul => "matmul",
         }
     }
 }
@@ -369,8 +373,28 @@ pub struct Choice {
 /// 13×13 17.4 ms against 11.6 ms).
 pub const SEPARABLE_FROM: usize = 9;
 
-/// Picks the strategy for a stage; a forced engine is taken as asked (a forced
-/// `separable` on kernels that are not rank 1 falls back to `direct`, and says so).
+/// Smallest product (kernels × input channels × taps per plane) from which the
+/// matrix product beats the direct strategy. Measured with `cargo bench --bench
+/// engine -- matmul_threshold` (medians, 2 cores): 8×1×3×3 (72) tied at 28 ms on
+/// 1024², 16×1×3×3 (144) ran 54 ms direct against 41 ms matmul, 64×3×7×7 on 512²
+/// 271 ms against 79 ms.
+pub const MATMUL_FROM: usize = 128;
+
+/// Fewest kernels for the matrix product: with fewer, the product is close to a
+/// matrix-vector one and the column copy is not repaid.
+pub const MATMUL_MIN_KERNELS: usize = 8;
+
+/// True when every kernel has the same size and padding (what `matmul` needs).
+fn uniform(stage: &PreparedStage) -> bool {
+    let k0 = &stage.kernels[0];
+    stage
+        .kernels
+        .iter()
+        .all(|k| (k.rows, k.cols, k.geometry) == (k0.rows, k0.cols, k0.geometry))
+}
+
+/// Picks the strategy for a stage; a forced engine is taken as asked (forcing a
+/// strategy the bank does not suit falls back to `direct`, and says so).
 pub fn choose(stage: &PreparedStage, requested: Engine) -> Choice {
     let all_separable = stage.kernels.iter().all(|k| k.factors.is_some());
     let smallest = stage
@@ -379,25 +403,43 @@ pub fn choose(stage: &PreparedStage, requested: Engine) -> Choice {
         .map(|k| k.rows.min(k.cols))
         .min()
         .unwrap_or(0);
+    let work =
+        stage.kernels.len() * stage.channels * stage.kernels.first().map_or(0, |k| k.rows * k.cols);
+    let fallback = |why: &str| Choice {
+        engine: Engine::Direct,
+        reason: why.to_string(),
+    };
     match requested {
+        Engine::Auto
+            if uniform(stage)
+                && work >= MATMUL_FROM
+                && stage.kernels.len() >= MATMUL_MIN_KERNELS
+                && !(all_separable && smallest >= SEPARABLE_FROM) =>
+        {
+            Choice {
+                engine: Engine::Matmul,
+                reason: format!(
+                    "{} kernels × {} channels × {} taps ≥ {MATMUL_FROM}: a matrix product pays",
+                    stage.kernels.len(),
+                    stage.channels,
+                    work / stage.kernels.len().max(1) / stage.channels.max(1)
+                ),
+            }
+        }
         Engine::Auto if all_separable && smallest >= SEPARABLE_FROM => Choice {
             engine: Engine::Separable,
             reason: format!("every kernel is rank 1 and at least {SEPARABLE_FROM} taps a side"),
         },
-        Engine::Auto if all_separable => Choice {
-            engine: Engine::Direct,
-            reason: format!(
-                "rank-1 kernels under {SEPARABLE_FROM} taps a side run faster directly"
-            ),
-        },
-        Engine::Auto => Choice {
-            engine: Engine::Direct,
-            reason: "some kernel is not rank 1".into(),
-        },
-        Engine::Separable if !all_separable => Choice {
-            engine: Engine::Direct,
-            reason: "separable forced, but some kernel is not rank 1".into(),
-        },
+        Engine::Auto if all_separable => fallback(&format!(
+            "rank-1 kernels under {SEPARABLE_FROM} taps a side run faster directly"
+        )),
+        Engine::Auto => fallback("small bank, kernels not all rank 1: direct row multiply-adds"),
+        Engine::Separable if !all_separable => {
+            fallback("separable forced, but some kernel is not rank 1")
+        }
+        Engine::Matmul if !uniform(stage) => {
+            fallback("matmul forced, but the kernels differ in size or padding")
+        }
         forced => Choice {
             engine: forced,
             reason: "forced by --engine".into(),
@@ -409,6 +451,7 @@ fn strategy(engine: Engine) -> &'static dyn Strategy {
     match engine {
         Engine::Reference => &reference::Reference,
         Engine::Separable => &separable::Separable,
+        Engine::Matmul => &matmul::Matmul,
         Engine::Direct | Engine::Auto => &direct::Direct,
     }
 }
