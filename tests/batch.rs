@@ -894,3 +894,102 @@ fn float_tiff_maps_read_back_exactly_as_float_input() {
         ("32", "float", "")
     );
 }
+
+#[test]
+fn npy_arrays_go_in_as_images() {
+    use ndarray::{Array2, Array4};
+    use ndarray_npy::WriteNpyExt;
+    let t = TempDir::new().unwrap();
+    let dir = t.path().join("arrays");
+    std::fs::create_dir_all(&dir).unwrap();
+    let save =
+        |name: &str, f: &dyn Fn(std::fs::File)| f(std::fs::File::create(dir.join(name)).unwrap());
+    save("deep.npy", &|f| {
+        Array2::from_shape_fn((3, 4), |(y, x)| (y * 1000 + x) as u16)
+            .write_npy(f)
+            .unwrap()
+    });
+    save("byte.npy", &|f| {
+        Array2::from_shape_fn((2, 2), |(y, x)| (y * 2 + x) as u8 * 50)
+            .write_npy(f)
+            .unwrap()
+    });
+    save("colour.npy", &|f| {
+        Array3::from_shape_fn((3, 2, 3), |(c, y, x)| {
+            [0.5f32, -1.0, 2.0][c] + (y + x) as f32
+        })
+        .write_npy(f)
+        .unwrap()
+    });
+    save("signed.npy", &|f| {
+        Array2::from_shape_fn((2, 3), |(y, x)| x as f64 - 1.5 - y as f64)
+            .write_npy(f)
+            .unwrap()
+    });
+    save("weights.npy", &|f| {
+        Array4::<f32>::zeros((2, 1, 3, 3)).write_npy(f).unwrap()
+    });
+    let out = t.path().join("o");
+    // A folder walk does not pick arrays up; a pattern naming .npy does.
+    tapmap()
+        .args(["apply", "--bank", "identity", "-o"])
+        .arg(&out)
+        .arg(&dir)
+        .assert()
+        .code(2)
+        .stderr(predicate::str::contains("holds no image files"));
+    let a = tapmap()
+        .args(["apply", "--bank", "identity", "-o"])
+        .arg(&out)
+        .arg(format!("{}/*.npy", dir.display()))
+        .assert()
+        .code(1);
+    let err = String::from_utf8_lossy(&a.get_output().stderr).into_owned();
+    assert!(
+        err.contains("weights.npy: is an array of shape [2, 1, 3, 3]; images are H×W or C×H×W"),
+        "{err}"
+    );
+    let deep = npy(&out.join("maps/deep.npy"));
+    assert_eq!(deep.dim(), (1, 3, 4));
+    assert_eq!(deep[[0, 2, 3]], 2003.0 / 65535.0, "uint16 by full scale");
+    assert_eq!(npy(&out.join("maps/byte.npy"))[[0, 1, 1]], 150.0 / 255.0);
+    let colour = npy(&out.join("maps/colour.npy"));
+    let want = 0.2126f32 * 1.5 + 0.7152 * 0.0 + 0.0722 * 3.0;
+    assert!(
+        (colour[[0, 1, 0]] - want).abs() < 1e-6,
+        "float arrays as they are, BT.709 luma"
+    );
+    assert_eq!(
+        npy(&out.join("maps/signed.npy"))[[0, 1, 0]],
+        -2.5,
+        "negative floats kept"
+    );
+    let rows = csv_rows(&out.join("images.csv"));
+    let deep_row = rows.iter().find(|r| r["path"] == "deep.npy").unwrap();
+    assert_eq!(
+        (
+            deep_row["bit_depth"].as_str(),
+            deep_row["white"].as_str(),
+            deep_row["sample"].as_str()
+        ),
+        ("16", "65535", "int")
+    );
+    // --white and split channels.
+    let out2 = t.path().join("o2");
+    tapmap()
+        .args([
+            "apply", "--bank", "identity", "--white", "4095", "--color", "split", "-q", "-o",
+        ])
+        .arg(&out2)
+        .arg(dir.join("deep.npy"))
+        .arg(dir.join("colour.npy"))
+        .assert()
+        .success();
+    assert_eq!(npy(&out2.join("maps/deep.npy"))[[0, 2, 3]], 2003.0 / 4095.0);
+    let names: Vec<String> = csv_rows(&out2.join("stats.csv"))
+        .iter()
+        .filter(|r| r["path"] == "colour.npy")
+        .map(|r| r["name"].clone())
+        .collect();
+    assert_eq!(names, ["identity@r", "identity@g", "identity@b"]);
+}

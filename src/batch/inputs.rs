@@ -7,7 +7,9 @@
 //!   works in every shell; outputs mirror paths below the pattern's fixed prefix.
 //!
 //! Folders and patterns keep only image extensions; a file named explicitly is
-//! always tried (and reported if it is not an image). The output folder is never
+//! always tried (and reported if it is not an image). NumPy `.npy` arrays are read
+//! when named or matched by a pattern that itself ends in `.npy`, never picked up
+//! from a folder walk (folders of captures often hold weight files beside them). The output folder is never
 //! read, even inside an input folder. The list is sorted by relative path; the
 //! same file reached twice is kept once; two inputs that would write the same
 //! output name are an error before any work starts.
@@ -55,6 +57,12 @@ fn has_image_extension(p: &Path) -> bool {
     p.extension()
         .and_then(|e| e.to_str())
         .is_some_and(|e| IMAGE_EXTENSIONS.iter().any(|x| x.eq_ignore_ascii_case(e)))
+}
+
+fn is_npy(p: &Path) -> bool {
+    p.extension()
+        .and_then(|e| e.to_str())
+        .is_some_and(|e| e.eq_ignore_ascii_case("npy"))
 }
 
 fn is_pattern(s: &str) -> bool {
@@ -181,12 +189,16 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
         let s = arg.to_string_lossy();
         if !arg.exists() && is_pattern(&s) {
             let root = pattern_root(&s);
+            let npy_pattern = s.to_ascii_lowercase().ends_with(".npy");
             let paths = glob::glob(&s).map_err(|e| Error::Stage(format!("pattern '{s}': {e}")))?;
             let before = items.len();
             for p in paths {
                 match p {
                     Ok(p) if p.is_dir() => walk_folder(&p, &root, &ex, &mut items),
-                    Ok(p) if has_image_extension(&p) && !ex.excludes(&p) => {
+                    Ok(p)
+                        if (has_image_extension(&p) || (npy_pattern && is_npy(&p)))
+                            && !ex.excludes(&p) =>
+                    {
                         let rel = rel_below(&p, &root);
                         items.push(InputItem {
                             source: p,

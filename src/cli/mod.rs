@@ -137,7 +137,8 @@ struct StageArgs {
     /// Do not apply the EXIF orientation; read pixels as stored.
     #[arg(long)]
     ignore_orientation: bool,
-    /// Conv strategy: auto (the planner chooses), reference (slow, exact), direct.
+    /// Conv strategy: auto (the planner chooses; `plan` shows the choice and why),
+    /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks).
     #[arg(long, default_value = "auto", value_name = "ENGINE")]
     engine: Engine,
 }
@@ -169,6 +170,7 @@ struct ApplyArgs {
     #[arg(long, short = 'q')]
     quiet: bool,
     /// Image files, folders (read recursively) and glob patterns (quote them: 'captures/**/*.png').
+    /// NumPy .npy arrays (H×W or C×H×W) are read when named or matched by a '*.npy' pattern.
     #[arg(required = true, value_name = "INPUT")]
     inputs: Vec<PathBuf>,
 }

@@ -167,6 +167,9 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
             }
         }
     }
+    if head[..n].starts_with(b"\x93NUMPY") {
+        return read_npy_image(path, opts, meta.len());
+    }
     let format = image::guess_format(&head[..n]).map_err(|_| {
         bad(path, "is not an image: its first bytes match no format tapmap reads (PNG, JPEG, TIFF, BMP, PNM)")
     })?;
@@ -235,6 +238,99 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
         info.orientation_applied = orientation != Orientation::NoTransforms;
     }
     convert(&img, opts, info).map_err(|m| bad(path, m))
+}
+
+/// A NumPy `.npy` array as an image: H×W or C×H×W, uint8, uint16, float32 or
+/// float64 (either byte order, C or Fortran order). Integers are divided by the
+/// white level as for image files; floats are taken as they are. One channel is
+/// grey, three are r, g, b; other counts are channels c0, c1, … (split mode
+/// only). Arrays carry no orientation.
+fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedImage, Error> {
+    if size > MAX_ALLOC {
+        return Err(bad(
+            path,
+            format!("is {size} bytes, over the {MAX_ALLOC}-byte limit"),
+        ));
+    }
+    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    let (shape, mut data, full) =
+        crate::kernel::tensors::npy_array(&bytes).map_err(|m| bad(path, m))?;
+    let (c, h, w) = match shape.as_slice() {
+        [h, w] => (1, *h, *w),
+        [c, h, w] => (*c, *h, *w),
+        s => {
+            return Err(bad(
+                path,
+                format!("is an array of shape {s:?}; images are H×W or C×H×W"),
+            ))
+        }
+    };
+    if c == 0 || h == 0 || w == 0 {
+        return Err(bad(path, format!("has a zero-sized dimension {shape:?}")));
+    }
+    if h > MAX_SIDE as usize || w > MAX_SIDE as usize {
+        return Err(bad(
+            path,
+            format!("is {w}×{h}, over the limit of {MAX_SIDE} pixels a side"),
+        ));
+    }
+    let mut info = ImageMeta {
+        width: w as u32,
+        height: h as u32,
+        ..ImageMeta::default()
+    };
+    match full {
+        Some(f) => {
+            let wl = match opts.white {
+                Some(v) if v >= 1 && v <= f => v,
+                _ => f,
+            };
+            info.white = Some(wl);
+            info.bit_depth = if f == 255 { 8 } else { 16 };
+            data.iter_mut().for_each(|v| *v /= wl as f32);
+        }
+        None => {
+            info.float = true;
+            info.bit_depth = 32;
+        }
+    }
+    info.color = match c {
+        1 => "grey",
+        3 => "rgb",
+        _ => "array",
+    };
+    let plane = h * w;
+    let (data, names): (Vec<f32>, Vec<String>) = match (opts.color, c) {
+        (ColorMode::Luma, 1) => (data, vec!["luma".into()]),
+        (ColorMode::Luma, 3) => (
+            (0..plane)
+                .map(|i| {
+                    BT709[0] * data[i] + BT709[1] * data[plane + i] + BT709[2] * data[2 * plane + i]
+                })
+                .collect(),
+            vec!["luma".into()],
+        ),
+        (ColorMode::Rgb, 3) | (ColorMode::Split, 3) => {
+            (data, vec!["r".into(), "g".into(), "b".into()])
+        }
+        (ColorMode::Split, 1) => (data, vec!["grey".into()]),
+        (ColorMode::Split, _) => (data, (0..c).map(|i| format!("c{i}")).collect()),
+        (mode, _) => {
+            return Err(bad(
+                path,
+                format!(
+                    "has {c} channel(s), which colour mode {mode} cannot use; use --color split"
+                ),
+            ));
+        }
+    };
+    let n = names.len();
+    let data = Array3::from_shape_vec((n, h, w), data).map_err(|e| bad(path, e.to_string()))?;
+    Ok(LoadedImage {
+        data,
+        channel_names: names,
+        meta: info,
+    })
 }
 
 /// One-channel float TIFF, which the image crate does not read: decoded with the

@@ -67,12 +67,15 @@ enum Elem {
     BF16,
     F32,
     F64,
+    U8,
+    U16,
 }
 
 impl Elem {
     fn size(self) -> usize {
         match self {
-            Elem::F16 | Elem::BF16 => 2,
+            Elem::U8 => 1,
+            Elem::F16 | Elem::BF16 | Elem::U16 => 2,
             Elem::F32 => 4,
             Elem::F64 => 8,
         }
@@ -94,6 +97,8 @@ fn convert(bytes: &[u8], elem: Elem, big_endian: bool) -> Vec<f32> {
                 Elem::BF16 => half::bf16::from_le_bytes([b[0], b[1]]).to_f32(),
                 Elem::F32 => f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
                 Elem::F64 => f64::from_le_bytes(b) as f32,
+                Elem::U8 => b[0] as f32,
+                Elem::U16 => u16::from_le_bytes([b[0], b[1]]) as f32,
             }
         })
         .collect()
@@ -192,7 +197,7 @@ pub fn parse_npy_header(bytes: &[u8]) -> Result<NpyHeader, String> {
     })
 }
 
-fn elem_of(descr: &str) -> Result<(Elem, bool), String> {
+fn elem_of(descr: &str, allow_int: bool) -> Result<(Elem, bool), String> {
     // The first character is the byte-order mark; split on a char boundary, since
     // a damaged header may hold any UTF-8 there.
     let first = descr.chars().next().map_or(0, char::len_utf8);
@@ -207,6 +212,13 @@ fn elem_of(descr: &str) -> Result<(Elem, bool), String> {
         "f4" => Elem::F32,
         "f8" => Elem::F64,
         "bfloat16" => Elem::BF16,
+        "u1" if allow_int => Elem::U8,
+        "u2" if allow_int => Elem::U16,
+        other if allow_int => {
+            return Err(format!(
+                "has dtype '{other}'; image arrays must be uint8, uint16, float32 or float64"
+            ))
+        }
         other => {
             return Err(format!(
                 "has dtype '{other}'; weights must be float16, bfloat16, float32 or float64"
@@ -225,8 +237,32 @@ fn count(shape: &[usize]) -> Result<usize, String> {
 
 /// Reads a tensor from `.npy` bytes.
 pub fn npy_tensor(bytes: &[u8], name: &str) -> Result<Tensor, String> {
+    let (h, data, _) = npy_values(bytes, false)?;
+    Ok(Tensor {
+        name: name.to_string(),
+        shape: h.shape,
+        dtype: h.descr,
+        data,
+    })
+}
+
+/// An image array from `.npy` bytes: (shape, values in C order, the integer
+/// type's full scale or `None` for float). Values are as stored, not scaled.
+pub fn npy_array(bytes: &[u8]) -> Result<(Vec<usize>, Vec<f32>, Option<u32>), String> {
+    let (h, data, elem) = npy_values(bytes, true)?;
+    let full = match elem {
+        Elem::U8 => Some(255),
+        Elem::U16 => Some(65535),
+        _ => None,
+    };
+    Ok((h.shape, data, full))
+}
+
+/// Header, values (C order) and element type of `.npy` bytes, sizes checked
+/// against the bytes present before anything is allocated.
+fn npy_values(bytes: &[u8], allow_int: bool) -> Result<(NpyHeader, Vec<f32>, Elem), String> {
     let h = parse_npy_header(bytes)?;
-    let (elem, big) = elem_of(&h.descr)?;
+    let (elem, big) = elem_of(&h.descr, allow_int)?;
     let n = count(&h.shape)?;
     let need = n
         .checked_mul(elem.size())
@@ -242,12 +278,7 @@ pub fn npy_tensor(bytes: &[u8], name: &str) -> Result<Tensor, String> {
     if h.fortran && h.shape.len() > 1 {
         data = fortran_to_c(&data, &h.shape);
     }
-    Ok(Tensor {
-        name: name.to_string(),
-        shape: h.shape,
-        dtype: h.descr,
-        data,
-    })
+    Ok((h, data, elem))
 }
 
 /// Reorders column-major (Fortran) data into row-major order.
