@@ -253,8 +253,11 @@ fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedIm
         ));
     }
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-    let (shape, mut data, full) =
-        crate::kernel::tensors::npy_array(&bytes).map_err(|m| bad(path, m))?;
+    let crate::kernel::tensors::NpyArray {
+        shape,
+        mut data,
+        full_scale: full,
+    } = crate::kernel::tensors::npy_array(&bytes).map_err(|m| bad(path, m))?;
     let (c, h, w) = match shape.as_slice() {
         [h, w] => (1, *h, *w),
         [c, h, w] => (*c, *h, *w),

@@ -246,16 +246,30 @@ pub fn npy_tensor(bytes: &[u8], name: &str) -> Result<Tensor, String> {
     })
 }
 
-/// An image array from `.npy` bytes: (shape, values in C order, the integer
-/// type's full scale or `None` for float). Values are as stored, not scaled.
-pub fn npy_array(bytes: &[u8]) -> Result<(Vec<usize>, Vec<f32>, Option<u32>), String> {
+/// An image array read from `.npy` bytes.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NpyArray {
+    /// Shape.
+    pub shape: Vec<usize>,
+    /// Values as stored (not scaled), C order.
+    pub data: Vec<f32>,
+    /// The integer type's full scale (255, 65535), or `None` for float.
+    pub full_scale: Option<u32>,
+}
+
+/// An image array from `.npy` bytes (uint8, uint16, float32, float64).
+pub fn npy_array(bytes: &[u8]) -> Result<NpyArray, String> {
     let (h, data, elem) = npy_values(bytes, true)?;
-    let full = match elem {
+    let full_scale = match elem {
         Elem::U8 => Some(255),
         Elem::U16 => Some(65535),
         _ => None,
     };
-    Ok((h.shape, data, full))
+    Ok(NpyArray {
+        shape: h.shape,
+        data,
+        full_scale,
+    })
 }
 
 /// Header, values (C order) and element type of `.npy` bytes, sizes checked
