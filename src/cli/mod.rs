@@ -147,9 +147,8 @@ struct StageArgs {
 struct ApplyArgs {
     #[command(flatten)]
     stage: StageArgs,
-    /// Output folder (created if missing); never read as input.
-    #[arg(long, short = 'o', value_name = "DIR")]
-    out: PathBuf,
+    #[command(flatten)]
+    io: RunArgs,
     /// What to write, comma-separated: maps, tiff, views, sheets, stats, manifest, or all.
     /// images.csv is always written.
     #[arg(long, default_value = "maps,views,stats,manifest", value_name = "LIST")]
@@ -166,6 +165,14 @@ struct ApplyArgs {
     /// Images processed at once, and threads [default: all cores].
     #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     jobs: Option<u32>,
+}
+
+/// Output folder, quietness and inputs: the same for every command that reads images.
+#[derive(Args)]
+struct RunArgs {
+    /// Output folder (created if missing); never read as input.
+    #[arg(long, short = 'o', value_name = "DIR")]
+    out: PathBuf,
     /// Print nothing but errors (no progress bar, no summary unless something failed).
     #[arg(long, short = 'q')]
     quiet: bool,
@@ -198,15 +205,8 @@ struct BordersArgs {
     /// from every side, run it with each mode, compare with the full image's result.
     #[arg(long, value_name = "N")]
     crop: Option<usize>,
-    /// Output folder.
-    #[arg(long, short = 'o', value_name = "DIR")]
-    out: PathBuf,
-    /// Print only errors.
-    #[arg(long, short = 'q')]
-    quiet: bool,
-    /// Image files, folders and glob patterns.
-    #[arg(required = true, value_name = "INPUT")]
-    inputs: Vec<PathBuf>,
+    #[command(flatten)]
+    io: RunArgs,
 }
 
 /// A comma-separated list of distinct pad modes.
@@ -238,15 +238,8 @@ struct ProbeArgs {
     /// Images processed at once [default: all cores].
     #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     jobs: Option<u32>,
-    /// Output folder.
-    #[arg(long, short = 'o', value_name = "DIR")]
-    out: PathBuf,
-    /// Print only errors.
-    #[arg(long, short = 'q')]
-    quiet: bool,
-    /// Image files, folders and glob patterns.
-    #[arg(required = true, value_name = "INPUT")]
-    inputs: Vec<PathBuf>,
+    #[command(flatten)]
+    io: RunArgs,
 }
 
 #[derive(Subcommand)]
@@ -683,8 +676,8 @@ fn apply(a: ApplyArgs) -> Result<i32, Error> {
     let job = ApplyJob {
         spec,
         engine: a.stage.engine,
-        out_dir: a.out.clone(),
-        inputs: a.inputs,
+        out_dir: a.io.out.clone(),
+        inputs: a.io.inputs,
         save: a.save,
         view: ViewOptions {
             range: a.view_range,
@@ -693,10 +686,10 @@ fn apply(a: ApplyArgs) -> Result<i32, Error> {
         threshold: a.threshold,
         jobs,
         command_line: std::env::args().collect(),
-        progress: !a.quiet,
+        progress: !a.io.quiet,
     };
     let summary = run_apply(&job, &|msg| eprintln!("tapmap: {msg}"))?;
-    if !a.quiet || summary.failed > 0 {
+    if !a.io.quiet || summary.failed > 0 {
         let rate = if summary.seconds > 0.0 {
             (summary.processed + summary.failed) as f64 / summary.seconds
         } else {
@@ -708,7 +701,7 @@ fn apply(a: ApplyArgs) -> Result<i32, Error> {
             summary.failed,
             summary.seconds,
             summary.files,
-            a.out.display(),
+            a.io.out.display(),
             if a.save.manifest { ", manifest.json" } else { "" }
         );
     }
@@ -723,8 +716,8 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
     if b.tolerance.is_nan() || b.tolerance < 0.0 {
         return Err(Error::Stage("--tolerance must be a number ≥ 0".into()));
     }
-    let items = crate::batch::inputs::expand_inputs(&b.inputs, &b.out)?;
-    std::fs::create_dir_all(&b.out).map_err(|e| Error::io(&b.out, e))?;
+    let items = crate::batch::inputs::expand_inputs(&b.io.inputs, &b.io.out)?;
+    std::fs::create_dir_all(&b.io.out).map_err(|e| Error::io(&b.io.out, e))?;
     let (mut rows, mut bands, mut summary_rows) = (Vec::new(), Vec::new(), Vec::new());
     let mut all_curves: Vec<(PadMode, Vec<f64>, usize)> = Vec::new();
     let (mut ok, mut failed) = (0, 0);
@@ -751,7 +744,7 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
                 b.stage.engine,
             )?;
             let summary = bo::summarise(&st);
-            if !b.quiet {
+            if !b.io.quiet {
                 print!("{}", bo::summary_text(&path, &st, &summary));
             }
             let best = bo::best(&summary);
@@ -771,10 +764,10 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
             bo::borders_rows(&path, &st, &mut rows);
             bo::band_rows(&path, &st, &mut bands);
             let stem = item.stem_path();
-            bo::write_difference_views(&b.out.join("views").join(&stem), &st, &modes)?;
+            bo::write_difference_views(&b.io.out.join("views").join(&stem), &st, &modes)?;
             let curves = bo::curves(&st);
-            let plot = b.out.join("plots").join(&stem).with_extension("png");
-            std::fs::create_dir_all(plot.parent().unwrap_or(&b.out))
+            let plot = b.io.out.join("plots").join(&stem).with_extension("png");
+            std::fs::create_dir_all(plot.parent().unwrap_or(&b.io.out))
                 .map_err(|e| Error::io(&plot, e))?;
             let what = if crop.is_some() {
                 "crop study: error against the real surroundings"
@@ -823,19 +816,19 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
         }
     }
     bo::write_csv(
-        &b.out.join("borders.csv"),
+        &b.io.out.join("borders.csv"),
         &[
             "path", "study", "channel", "name", "mode", "distance", "mean_abs", "max_abs", "pixels",
         ],
         &rows,
     )?;
     bo::write_csv(
-        &b.out.join("bands.csv"),
+        &b.io.out.join("bands.csv"),
         &["path", "channel", "name", "edge", "band", "predicted"],
         &bands,
     )?;
     bo::write_csv(
-        &b.out.join("summary.csv"),
+        &b.io.out.join("summary.csv"),
         &[
             "path",
             "mode",
@@ -859,16 +852,16 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
             "all images: deviation from the median of all modes"
         };
         bo::write_plot(
-            &b.out.join("plot.png"),
+            &b.io.out.join("plot.png"),
             what,
             "mean |error| (response units)",
             &curves,
         )?;
     }
-    if !b.quiet || failed > 0 {
+    if !b.io.quiet || failed > 0 {
         eprintln!(
             "tapmap: {ok} image(s) studied, {failed} failed; results in {}",
-            b.out.display()
+            b.io.out.display()
         );
     }
     Ok(status(failed))
@@ -882,8 +875,8 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
     check_channels(&spec)?;
     let k = p.top as usize;
     let jobs = thread_count(p.jobs);
-    let items = crate::batch::inputs::expand_inputs(&p.inputs, &p.out)?;
-    std::fs::create_dir_all(&p.out).map_err(|e| Error::io(&p.out, e))?;
+    let items = crate::batch::inputs::expand_inputs(&p.io.inputs, &p.io.out)?;
+    std::fs::create_dir_all(&p.io.out).map_err(|e| Error::io(&p.io.out, e))?;
     // Per channel: (name, best hits). Channel names come from the first image.
     let best: Mutex<Vec<(String, Vec<Hit>)>> = Mutex::new(Vec::new());
     let failures: Mutex<Vec<(usize, String)>> = Mutex::new(Vec::new());
@@ -954,7 +947,7 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
         Stage::Conv(c) => Some(c.bank.clone()),
         _ => None,
     });
-    let kernels_dir = p.out.join("kernels");
+    let kernels_dir = p.io.out.join("kernels");
     std::fs::create_dir_all(&kernels_dir).map_err(|e| Error::io(&kernels_dir, e))?;
     let mut overview = Vec::new();
     for (ch, (name, hits)) in best.iter().enumerate() {
@@ -1032,7 +1025,7 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
             k + 1,
         );
         crate::render::write_png(
-            &p.out.join("overview.png"),
+            &p.io.out.join("overview.png"),
             s.as_raw(),
             s.width(),
             s.height(),
@@ -1040,20 +1033,20 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
         )?;
     }
     crate::borders::output::write_csv(
-        &p.out.join("probe.csv"),
+        &p.io.out.join("probe.csv"),
         &[
             "channel", "kernel", "rank", "path", "x", "y", "response", "box_x", "box_y", "box_w",
             "box_h", "clipped",
         ],
         &rows,
     )?;
-    if !p.quiet || !failures.is_empty() {
+    if !p.io.quiet || !failures.is_empty() {
         eprintln!(
             "tapmap: probed {} image(s), {} failed; {} kernel(s), top {k}; results in {}",
             items.len() - failures.len(),
             failures.len(),
             best.len(),
-            p.out.display()
+            p.io.out.display()
         );
     }
     Ok(status(failures.len()))
