@@ -1,0 +1,128 @@
+"""Side-by-side comparison of tapmap with general-purpose libraries, in one run.
+
+Each workload runs in tapmap (in-process timing by examples/bench_workload.rs)
+and in the reference library (in-process timing here), alternating, RUNS times
+each; the table gives medians, the ratio, GFLOP/s (2 flops per multiply-add) and
+whether the outputs agree. Inputs are generated once as .npy files.
+
+Run through bench/compare.sh (it builds tapmap and makes the Python environment).
+"""
+import json
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+import scipy.ndimage as ndi
+import scipy.signal as sig
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+BIN = os.path.join(ROOT, "target", "release", "examples", "bench_workload")
+RUNS = int(os.environ.get("RUNS", "5"))
+
+try:
+    import torch
+    import torch.nn.functional as F
+    torch.set_num_threads(os.cpu_count())
+    HAVE_TORCH = True
+except Exception as e:  # noqa: BLE001 - any import failure means "no torch"
+    HAVE_TORCH = False
+    TORCH_WHY = str(e).splitlines()[0][:120]
+
+
+def gaussian_taps(sigma, radius):
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    g = np.exp(-x * x / (2 * sigma * sigma))
+    return g / g.sum()
+
+
+def run_tapmap(inp, bank, pad, extent, stride, out, extra=()):
+    r = subprocess.run([BIN, inp, bank, pad, extent, str(stride), "1", out, *extra],
+                       check=True, capture_output=True, text=True)
+    return json.loads(r.stdout)
+
+
+def timed(fn):
+    t = time.perf_counter()
+    y = fn()
+    return time.perf_counter() - t, y
+
+
+def workload(name, inp, bank, pad, extent, stride, ref_name, ref_fn, extra=(), tol=1e-4):
+    d = os.path.dirname(inp)
+    out = os.path.join(d, name + "-tapmap.npy")
+    ours, theirs, info = [], [], None
+    ref_y = None
+    for _ in range(RUNS):  # alternate the two, so machine noise hits both alike
+        info = run_tapmap(inp, bank, pad, extent, stride, out, extra)
+        ours.append(info["median_s"])
+        t, ref_y = timed(ref_fn)
+        theirs.append(t)
+    y = np.load(out)
+    ref_y = np.asarray(ref_y, dtype=np.float64).reshape(y.shape)
+    err = float(np.max(np.abs(y - ref_y)) / max(1e-30, float(np.max(np.abs(ref_y)))))
+    mo, mt = statistics.median(ours), statistics.median(theirs)
+    gflops = 2 * info["multiply_adds"] / mo / 1e9
+    print("%-4s %-44s %10.1f %10.1f %7.2fx %8.1f  %-9s %s" % (
+        name, ref_name, mo * 1e3, mt * 1e3, mt / mo, gflops, info["engine"],
+        "agree (rel %.1e)" % err if err < tol else "DIFFER (rel %.1e)" % err))
+
+
+def main():
+    rng = np.random.default_rng(20261202)
+    with tempfile.TemporaryDirectory() as d:
+        big = rng.random((4096, 4096), dtype=np.float32)
+        p_big = os.path.join(d, "big.npy")
+        np.save(p_big, big)
+        mid = rng.random((2048, 2048), dtype=np.float32)
+        p_mid = os.path.join(d, "mid.npy")
+        np.save(p_mid, mid)
+        k31 = rng.standard_normal((31, 31))
+        bank31 = os.path.join(d, "k31.toml")
+        with open(bank31, "w") as f:
+            f.write('name = "k31"\nop = "convolve"\n[[kernel]]\nname = "r31"\ntaps = [%s]\n'
+                    % ", ".join("[" + ", ".join(repr(float(v)) for v in row) + "]" for row in k31))
+        print("machine: %d cores; RUNS=%d; times are medians in ms" % (os.cpu_count(), RUNS))
+        print("%-4s %-44s %10s %10s %8s %8s  %-9s %s" % ("", "reference", "tapmap", "reference", "ratio", "GFLOP/s", "engine", "outputs"))
+        sx = np.array([[-1, 0, 1], [-2, 0, 2], [-1, 0, 1]], dtype=np.float64)
+        workload("W1", p_big, "sobel-x+sobel-y", "zero", "same", 1,
+                 "scipy.ndimage.correlate x2 (constant 0)",
+                 lambda: np.stack([ndi.correlate(big, sx, mode="constant", cval=0.0),
+                                   ndi.correlate(big, sx.T, mode="constant", cval=0.0)]))
+        g = gaussian_taps(2.0, 6)
+        workload("W2", p_big, "gaussian:sigma=2", "reflect", "same", 1,
+                 "scipy.ndimage.gaussian_filter (truncate 3)",
+                 lambda: ndi.gaussian_filter(big, 2.0, mode="mirror", truncate=3.0))
+        workload("W3", p_mid, bank31, "zero", "same", 1,
+                 "scipy.signal.fftconvolve (mode same)",
+                 lambda: sig.fftconvolve(mid, k31, mode="same"), tol=1e-3)
+        if HAVE_TORCH:
+            x3 = rng.random((3, 1024, 1024), dtype=np.float32)
+            p3 = os.path.join(d, "x3.npy")
+            np.save(p3, x3)
+            w = rng.standard_normal((64, 3, 7, 7)).astype(np.float32)
+            wb = os.path.join(d, "w.npy")
+            np.save(wb, w)
+            xt = torch.from_numpy(x3[None])
+            wt = torch.from_numpy(w)
+            with torch.no_grad():
+                workload("W4", p3, wb, "zero", "3", 2, "torch conv2d 64x3x7x7 s2 p3",
+                         lambda: F.conv2d(xt, wt, stride=2, padding=3).numpy()[0])
+                workload("W5", p3, wb, "zero", "3", 2, "torch conv2d + relu + max_pool2d",
+                         lambda: F.max_pool2d(F.relu(F.conv2d(xt, wt, stride=2, padding=3)), 2).numpy()[0],
+                         extra=("relu", "maxpool2"))
+                w8 = rng.standard_normal((8, 1, 3, 3)).astype(np.float32)
+                w8p = os.path.join(d, "w8.npy")
+                np.save(w8p, w8)
+                bt = torch.from_numpy(big[None, None])
+                workload("W6", p_big, w8p, "zero", "same", 1, "torch conv2d 8x1x3x3 pad 1",
+                         lambda: F.conv2d(bt, torch.from_numpy(w8), padding=1).numpy()[0])
+        else:
+            print("W4-W6 skipped: PyTorch is not importable here (%s)" % TORCH_WHY)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
