@@ -130,24 +130,23 @@ pub fn pad_1d(x: &[f64], mode: PadMode, before: usize, after: usize) -> Vec<f64>
         .collect()
 }
 
-/// Pads one plane of `h × w` f32 samples (row-major) into `out`, which is resized to
-/// `(h + top + bottom) × (w + left + right)`. Rows that are entirely zero padding
-/// are filled without reading the input.
+/// Pads one plane of `h × w` f32 samples (row-major) into `out`, which must hold
+/// exactly `(h + top + bottom) × (w + left + right)` samples. Every sample of
+/// `out` is written (rows of zero padding with zeros).
 pub fn pad_plane_into(
     plane: &[f32],
     (h, w): (usize, usize),
     mode: PadMode,
     (top, bottom): (usize, usize),
     (left, right): (usize, usize),
-    out: &mut Vec<f32>,
+    out: &mut [f32],
 ) {
     let pw = w + left + right;
-    let ph = h + top + bottom;
+    assert_eq!(out.len(), (h + top + bottom) * pw, "padded plane size");
     let cols = index_map(mode, w, left, right);
-    out.clear();
-    out.resize(ph * pw, 0.0);
     for (j, dst) in out.chunks_exact_mut(pw).enumerate() {
         let Some(r) = mode.source(j as isize - top as isize, h) else {
+            dst.fill(0.0);
             continue;
         };
         let src = &plane[r * w..(r + 1) * w];

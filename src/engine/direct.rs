@@ -34,13 +34,12 @@ impl Strategy for Direct {
         // Kernels with the same padding share one padded copy of the input.
         let mut padded: Vec<f32> = Vec::new();
         let mut padded_for: Option<(usize, usize, usize, usize)> = None;
-        let mut plane_buf = Vec::new();
         for (n, k) in st.kernels.iter().enumerate() {
             let (gr, gc) = (k.geometry.rows, k.geometry.cols);
             let pads = (gr.pad_before, gr.pad_after, gc.pad_before, gc.pad_after);
             let (ph, pw) = (gr.padded(), gc.padded());
             if padded_for != Some(pads) {
-                pad_input(st, &k.geometry, input, &mut padded, &mut plane_buf);
+                pad_input(st, &k.geometry, input, &mut padded);
                 padded_for = Some(pads);
             }
             let dst = &mut out[n * plane_out..(n + 1) * plane_out];

@@ -58,8 +58,8 @@ impl Strategy for Matmul {
         let kk = c * kh * kw;
         let (oh, ow) = (st.out_height, st.out_width);
         let n = st.kernels.len();
-        let (mut padded, mut plane_buf) = (Vec::new(), Vec::new());
-        pad_input(st, &k0.geometry, input, &mut padded, &mut plane_buf);
+        let mut padded = Vec::new();
+        pad_input(st, &k0.geometry, input, &mut padded);
         let weights: Vec<f32> = st
             .kernels
             .iter()

@@ -25,7 +25,7 @@ impl Strategy for Separable {
     fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
         let (oh, ow) = (st.out_height, st.out_width);
         let plane_out = oh * ow;
-        let (mut padded, mut plane_buf, mut tmp) = (Vec::new(), Vec::new(), Vec::new());
+        let (mut padded, mut tmp) = (Vec::new(), Vec::new());
         for (n, k) in st.kernels.iter().enumerate() {
             let factors = k
                 .factors
@@ -33,7 +33,7 @@ impl Strategy for Separable {
                 .expect("the planner chooses separable only for rank-1 kernels");
             let (gr, gc) = (k.geometry.rows, k.geometry.cols);
             let (ph, pw) = (gr.padded(), gc.padded());
-            pad_input(st, &k.geometry, input, &mut padded, &mut plane_buf);
+            pad_input(st, &k.geometry, input, &mut padded);
             let dst = &mut out[n * plane_out..(n + 1) * plane_out];
             dst.fill(0.0);
             for (c, f) in factors.iter().enumerate() {
