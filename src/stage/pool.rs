@@ -96,36 +96,60 @@ impl Pool {
         ))
     }
 
-    /// Pools every map of a `C × H × W` array.
+    /// Pools every map of a `C × H × W` array. Each output row is built from
+    /// whole input rows (running max or f64 sum per output column), maps in
+    /// parallel; every output is computed in the same order whatever the threads.
     pub fn apply(&self, input: &Array3<f32>) -> Result<Array3<f32>, Error> {
+        use rayon::prelude::*;
         let (c, h, w) = input.dim();
         let (oh, ow) = self.output_size(h, w)?;
         let ((kh, kw), (sh, sw)) = self.window_over(h, w);
-        let mut out = Array3::<f32>::zeros((c, oh, ow));
-        for ch in 0..c {
-            let map = input.index_axis(ndarray::Axis(0), ch);
-            for oy in 0..oh {
-                for ox in 0..ow {
-                    let win = map.slice(ndarray::s![oy * sh..oy * sh + kh, ox * sw..ox * sw + kw]);
-                    out[[ch, oy, ox]] = match self.kind {
-                        PoolKind::Max => win.iter().fold(f32::NEG_INFINITY, |m, &v| {
-                            if v > m || v.is_nan() || m.is_nan() {
-                                if m.is_nan() {
-                                    m
-                                } else {
-                                    v
+        let standard = input.as_standard_layout();
+        let data = standard.as_slice().expect("standard layout");
+        let mut out = vec![0.0f32; c * oh * ow];
+        let kind = self.kind;
+        out.par_chunks_mut(oh * ow)
+            .enumerate()
+            .for_each(|(ch, dst)| {
+                let map = &data[ch * h * w..(ch + 1) * h * w];
+                let mut acc = vec![0.0f64; ow];
+                let mut best = vec![f32::NEG_INFINITY; ow];
+                for (oy, row_out) in dst.chunks_exact_mut(ow).enumerate() {
+                    acc.fill(0.0);
+                    best.fill(f32::NEG_INFINITY);
+                    for r in oy * sh..oy * sh + kh {
+                        let line = &map[r * w..(r + 1) * w];
+                        for ox in 0..ow {
+                            let win = &line[ox * sw..ox * sw + kw];
+                            match kind {
+                                PoolKind::Max => {
+                                    let m = &mut best[ox];
+                                    for &v in win {
+                                        // NaN wins and stays, so a NaN in the window gives NaN.
+                                        if v > *m || v.is_nan() && !m.is_nan() {
+                                            *m = v;
+                                        }
+                                    }
                                 }
-                            } else {
-                                m
+                                PoolKind::Mean => {
+                                    acc[ox] += win.iter().map(|&v| v as f64).sum::<f64>()
+                                }
                             }
-                        }),
-                        PoolKind::Mean => {
-                            (win.iter().map(|&v| v as f64).sum::<f64>() / (kh * kw) as f64) as f32
                         }
-                    };
+                    }
+                    match kind {
+                        PoolKind::Max => row_out.copy_from_slice(&best),
+                        PoolKind::Mean => {
+                            let n = (kh * kw) as f64;
+                            row_out
+                                .iter_mut()
+                                .zip(&acc)
+                                .for_each(|(o, a)| *o = (a / n) as f32);
+                        }
+                    }
                 }
-            }
-        }
-        Ok(out)
+            });
+        Array3::from_shape_vec((c, oh, ow), out)
+            .map_err(|e| Error::Stage(format!("pool output: {e}")))
     }
 }
