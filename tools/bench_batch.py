@@ -75,7 +75,9 @@ def main():
                             os.path.join(ROOT, "sample_data")], check=True)
             times.append(time.monotonic() - t0)
             shutil.rmtree(out)
-        n = sum(len(f) for _, _, f in os.walk(os.path.join(ROOT, "sample_data")))
+        exts = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".pnm", ".pgm", ".ppm")
+        n = sum(1 for _, _, fs in os.walk(os.path.join(ROOT, "sample_data"))
+                for f in fs if f.lower().endswith(exts))
         med = statistics.median(times)
         print("  %d images: median %.3f s (runs %s), %.1f images/s"
               % (n, med, ", ".join("%.3f" % t for t in times), n / med))
