@@ -5,7 +5,7 @@
 # installed only when asked.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-cargo build --release --example bench_workload
+cargo build --release --example bench_workload --bin tapmap
 python3 -m venv target/bench-venv
 target/bench-venv/bin/pip install --quiet --disable-pip-version-check numpy scipy
 if [ "${1:-}" = "--torch" ]; then
