@@ -319,10 +319,11 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
         Engine::Separable
     );
     assert_eq!(
-        plan("binomial:size=7"),
-        Engine::Direct,
-        "7×7 is below the measured crossover"
+        plan("binomial:size=5"),
+        Engine::Separable,
+        "5×5 is at the measured crossover"
     );
+    assert_eq!(plan("binomial:size=3"), Engine::Direct, "3×3 is below it");
     assert_eq!(plan("edges"), Engine::Direct, "laplace-8 is rank 2");
     assert_eq!(
         plan("sobel-x+sobel-y+scharr-x+scharr-y+prewitt-x+prewitt-y+laplace-4+laplace-8"),

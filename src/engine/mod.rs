@@ -126,8 +126,7 @@ pub(crate) fn pad_input(st: &PreparedStage, g: &Geometry, input: &[f32], out: &m
     let plane = g.rows.padded() * g.cols.padded();
     let total = st.channels * plane;
     if out.capacity() < total {
-        *out = Vec::with_capacity(total);
-        advise_huge_range(out.as_mut_ptr(), total);
+        *out = fresh_buffer(total);
     }
     // Every sample is overwritten below; the zero fill only makes the memory valid.
     out.clear();
@@ -369,10 +368,10 @@ pub struct Choice {
 }
 
 /// Smallest kernel side from which the separable passes beat the direct strategy
-/// (measured with `cargo bench --bench engine -- separable_threshold`: on 1024×1024,
-/// 7×7 ran 6.3 ms direct against 7.3 ms separable, 9×9 9.6 ms against 9.0 ms,
-/// 13×13 17.4 ms against 11.6 ms).
-pub const SEPARABLE_FROM: usize = 9;
+/// (measured with `cargo bench --bench engine -- separable_threshold`, medians on
+/// 1024²: 3×3 ran 1.54 ms direct against 1.96 ms separable, 5×5 2.49 against
+/// 2.23, 7×7 3.56 against 2.29, 13×13 9.70 against 3.08).
+pub const SEPARABLE_FROM: usize = 5;
 
 /// Smallest product (kernels × input channels × taps per plane) from which the
 /// matrix product beats the direct strategy. Measured with `cargo bench --bench
@@ -464,6 +463,14 @@ fn strategy(engine: Engine) -> &'static dyn Strategy {
 /// are ignored, and other systems do nothing.
 fn advise_huge_pages(buf: &mut [f32]) {
     advise_huge_range(buf.as_mut_ptr(), buf.len());
+}
+
+/// An empty buffer with room for `len` samples, backed by huge pages where the
+/// system allows (see [`advise_huge_pages`]).
+pub(crate) fn fresh_buffer(len: usize) -> Vec<f32> {
+    let mut v = Vec::with_capacity(len);
+    advise_huge_range(v.as_mut_ptr(), len);
+    v
 }
 
 /// [`advise_huge_pages`] for `len` f32 slots from `ptr`, which may be a Vec's
