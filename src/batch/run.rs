@@ -217,14 +217,10 @@ fn process(job: &ApplyJob, item: &InputItem, table: &[[u8; 3]]) -> ImageRecord {
         let img =
             read_image(&item.source, &job.spec.input).map_err(|e| strip_path(e, &item.source))?;
         rec.meta = Some(img.meta.clone());
-        let recipe = match job.spec.input.color {
-            ColorMode::Split => job
-                .spec
-                .recipe
-                .split_over(&img.channel_names)
-                .map_err(|e| e.to_string())?,
-            _ => job.spec.recipe.clone(),
-        };
+        let recipe = job
+            .spec
+            .recipe_for(&img.channel_names)
+            .map_err(|e| e.to_string())?;
         let input_nonneg = vec![!img.meta.float; img.data.dim().0];
         let names = recipe.channel_names(img.data.dim().0);
         let nonneg = recipe.non_negative_channels(input_nonneg);

@@ -146,7 +146,11 @@ pub const IMAGES_COLUMNS: [&str; 15] = [
     "maps_written",
 ];
 
-fn csv_bytes(header: &[&str], rows: impl Iterator<Item = Vec<String>>) -> Result<Vec<u8>, Error> {
+/// CSV text: a header line, then the rows (RFC 4180 quoting by the csv crate).
+pub fn csv_bytes(
+    header: &[&str],
+    rows: impl IntoIterator<Item = Vec<String>>,
+) -> Result<Vec<u8>, Error> {
     let mut w = csv::Writer::from_writer(Vec::new());
     let e = |e: csv::Error| Error::Stage(format!("CSV: {e}"));
     w.write_record(header).map_err(e)?;

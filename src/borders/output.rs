@@ -216,15 +216,7 @@ pub fn band_rows(path: &str, st: &ImageStudy, out: &mut Vec<Vec<String>>) {
 
 /// Writes a CSV atomically.
 pub fn write_csv(path: &Path, header: &[&str], rows: &[Vec<String>]) -> Result<(), Error> {
-    let mut w = csv::Writer::from_writer(Vec::new());
-    let e = |e: csv::Error| Error::Stage(format!("CSV: {e}"));
-    w.write_record(header).map_err(e)?;
-    for r in rows {
-        w.write_record(r).map_err(e)?;
-    }
-    let bytes = w
-        .into_inner()
-        .map_err(|e| Error::Stage(format!("CSV: {e}")))?;
+    let bytes = crate::batch::tables::csv_bytes(header, rows.iter().cloned())?;
     write_atomic(path, |out| out.write_all(&bytes))
 }
 

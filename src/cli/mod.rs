@@ -729,10 +729,7 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
                 return Err(Error::Stage(p.clone()));
             }
             let img = crate::io::read::read_image(&item.source, &spec.input)?;
-            let recipe = match spec.input.color {
-                ColorMode::Split => spec.recipe.split_over(&img.channel_names)?,
-                _ => spec.recipe.clone(),
-            };
+            let recipe = spec.recipe_for(&img.channel_names)?;
             let names = recipe.channel_names(img.data.dim().0);
             let st = crate::borders::study(
                 &recipe,
@@ -886,10 +883,7 @@ fn probe_cmd(p: ProbeArgs) -> Result<i32, Error> {
                 return Err(Error::Stage(m.clone()));
             }
             let img = crate::io::read::read_image(&item.source, &spec.input)?;
-            let recipe = match spec.input.color {
-                ColorMode::Split => spec.recipe.split_over(&img.channel_names)?,
-                _ => spec.recipe.clone(),
-            };
+            let recipe = spec.recipe_for(&img.channel_names)?;
             let (c, h, w) = img.data.dim();
             let fields = crate::borders::channel_fields(&recipe, c, h, w)?;
             let names = recipe.channel_names(c);

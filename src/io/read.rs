@@ -133,6 +133,15 @@ pub struct LoadedImage {
     pub meta: ImageMeta,
 }
 
+/// The value that becomes 1.0 for integer samples whose type's full scale is
+/// `full`: the declared `--white` where the type can hold it, else `full`.
+fn white_level(opts: &ReadOptions, full: u32) -> u32 {
+    match opts.white {
+        Some(w) if w >= 1 && w <= full => w,
+        _ => full,
+    }
+}
+
 fn bad(path: &Path, message: impl Into<String>) -> Error {
     Error::Image {
         path: path.to_path_buf(),
@@ -284,10 +293,7 @@ fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedIm
     };
     match full {
         Some(f) => {
-            let wl = match opts.white {
-                Some(v) if v >= 1 && v <= f => v,
-                _ => f,
-            };
+            let wl = white_level(opts, f);
             info.white = Some(wl);
             info.bit_depth = if f == 255 { 8 } else { 16 };
             data.iter_mut().for_each(|v| *v /= wl as f32);
@@ -437,10 +443,6 @@ pub fn convert(
         _ => "rgba",
     };
     let colour = channels >= 3;
-    let white_for = |full: u32| match opts.white {
-        Some(wl) if wl >= 1 && wl <= full => wl,
-        _ => full,
-    };
     let names: Vec<&str> = match (opts.color, colour) {
         (ColorMode::Luma, _) => vec!["luma"],
         (ColorMode::Rgb, true) | (ColorMode::Split, true) => vec!["r", "g", "b"],
@@ -455,13 +457,13 @@ pub fn convert(
     let out_c = names.len();
     let mut data = vec![0.0f32; out_c * w * h];
     if let Some(s) = img.as_flat_samples_u8() {
-        let wl = white_for(255);
+        let wl = white_level(opts, 255);
         info.white = Some(wl);
         fill(&mut data, (w * h, channels, out_c), s.samples, |v| {
             v as f32 / wl as f32
         });
     } else if let Some(s) = img.as_flat_samples_u16() {
-        let wl = white_for(65535);
+        let wl = white_level(opts, 65535);
         info.white = Some(wl);
         fill(&mut data, (w * h, channels, out_c), s.samples, |v| {
             v as f32 / wl as f32

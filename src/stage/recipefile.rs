@@ -115,6 +115,18 @@ struct StageIn {
     size: Option<PoolSizeIn>,
 }
 
+impl RecipeSpec {
+    /// The recipe to run on an image with these channel names: in `split` colour
+    /// mode the first conv stage's kernels are spread over the channels
+    /// ([`Recipe::split_over`]), otherwise the recipe as it is.
+    pub fn recipe_for(&self, channel_names: &[String]) -> Result<Recipe, Error> {
+        match self.input.color {
+            crate::io::read::ColorMode::Split => self.recipe.split_over(channel_names),
+            _ => Ok(self.recipe.clone()),
+        }
+    }
+}
+
 /// Resolves a `conv = "…"` bank named in a recipe: a path relative to the
 /// recipe's folder when it names a file there, else as `--bank` does.
 pub fn resolve_bank_near(
