@@ -246,6 +246,11 @@ pub fn window_output(
     window: usize,
     stride: usize,
 ) -> Result<usize, Error> {
+    if window > input {
+        return Err(Error::Geometry(format!(
+            "window {axis} {window} is larger than its input {axis} {input}, so there is nothing to pool"
+        )));
+    }
     axis_geometry(axis, input, window, stride, 1, Extent::Valid).map(|g| g.output)
 }
 

@@ -185,7 +185,7 @@ fn bad_images_are_reported_and_the_others_still_written() {
     let err = String::from_utf8_lossy(&assert.get_output().stderr).into_owned();
     for needle in [
         "notes.png: is not an image",
-        "trunc.png: cannot decode",
+        "trunc.png: is truncated",
         "empty.tif: is empty",
         "tiny.png: stage 1 (conv): kernel 'box:size=5' (5×5): kernel height 5 is larger than the padded input height 2",
         "gone.png",

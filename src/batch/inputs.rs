@@ -140,8 +140,16 @@ fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>
                     .path()
                     .map(Path::to_path_buf)
                     .unwrap_or_else(|| root.to_path_buf());
+                let link = std::fs::read_link(&path).ok();
                 let msg = if e.loop_ancestor().is_some() {
                     "is a symbolic link that loops back to a folder above it".to_string()
+                } else if let (Some(t), Some(std::io::ErrorKind::NotFound)) =
+                    (link, e.io_error().map(std::io::Error::kind))
+                {
+                    format!(
+                        "is a symbolic link to {}, which does not exist",
+                        t.display()
+                    )
                 } else {
                     e.io_error()
                         .map_or_else(|| e.to_string(), |io| io.to_string())
@@ -173,11 +181,31 @@ fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>
     }
 }
 
-/// `p` relative to `root`, or `p` itself when it is not below it.
+/// `p` relative to `root`, or `p`'s own plain components when it is not below it.
+/// Only plain names survive (no root, `..` or `.`), so an output path built from
+/// it always stays inside the output folder.
 fn rel_below(p: &Path, root: &Path) -> PathBuf {
-    p.strip_prefix(root)
-        .map(Path::to_path_buf)
-        .unwrap_or_else(|_| p.to_path_buf())
+    let rel = p.strip_prefix(root).unwrap_or(p);
+    let clean: PathBuf = rel
+        .components()
+        .filter_map(|c| match c {
+            Component::Normal(n) => Some(n),
+            _ => None,
+        })
+        .collect();
+    if clean.as_os_str().is_empty() {
+        p.file_name()
+            .map_or_else(|| PathBuf::from("input"), PathBuf::from)
+    } else {
+        clean
+    }
+}
+
+/// The order of inputs in every table: relative path compared component by
+/// component (`a/b.png` before `a-c.png`), the same key [`crate::batch::merge`]
+/// sorts shard results by.
+pub fn path_order_key(rel: &str) -> Vec<&str> {
+    rel.split('/').collect()
 }
 
 /// Expands the inputs (see the module header). Errors: a bad pattern, nothing to
@@ -248,7 +276,12 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
     if items.is_empty() {
         return Err(Error::Stage("no input images given".into()));
     }
-    items.sort_by(|a, b| a.rel.cmp(&b.rel).then_with(|| a.source.cmp(&b.source)));
+    items.sort_by(|a, b| {
+        let (ra, rb) = (a.rel_string(), b.rel_string());
+        path_order_key(&ra)
+            .cmp(&path_order_key(&rb))
+            .then_with(|| a.source.cmp(&b.source))
+    });
     // The same file reached twice (a folder and a pattern, say) is read once.
     let mut seen = std::collections::HashSet::new();
     items.retain(|i| {

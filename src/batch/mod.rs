@@ -15,7 +15,9 @@
 //! ```
 
 pub mod inputs;
+pub mod merge;
 pub mod run;
+pub mod shard;
 pub mod tables;
 
 use std::fmt;

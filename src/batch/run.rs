@@ -6,11 +6,24 @@
 //! each image's rows over the rayon pool, so one large image also uses every core.
 //! Results are gathered by input index, so tables come out in input order
 //! (sorted by relative path, then channel) whatever order the threads finish in.
+//!
+//! **Journal and resume.** Each input's finished result (its table rows and
+//! manifest entry) is appended to `journal.jsonl` as soon as its files are in
+//! place, tagged with a digest of everything that decides the outputs (tool
+//! version, recipe with bank digests, outputs asked for, view and statistics
+//! options, engine). `--resume` reuses a journal entry when the tag matches, the
+//! input's SHA-256 is unchanged and every file it lists is there with its
+//! recorded size; everything else is done again. At the end the journal is
+//! rewritten to hold exactly this run's results, in table order.
+//!
+//! **Stopping.** When a stop is requested ([`stop_requested`], set by the command
+//! line on SIGINT or SIGTERM), workers finish the images in flight, take no new
+//! ones, and the tables and manifest are written for what is done.
 
-use std::io::Read;
+use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicUsize, Ordering};
-use std::sync::Mutex;
+use std::sync::{Arc, Mutex, OnceLock};
 use std::time::{Instant, SystemTime};
 
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
@@ -18,7 +31,11 @@ use ndarray::Array3;
 use sha2::{Digest, Sha256};
 
 use crate::batch::inputs::{expand_inputs, InputItem};
-use crate::batch::tables::{write_tables, ImageRecord, OutputFile, StatsRow, ViewRecord};
+use crate::batch::shard::Shard;
+use crate::batch::tables::{
+    job_header, recipe_json, write_tables, Finished, ImageRecord, OutputFile, RunFacts, StatsRow,
+    ViewRecord,
+};
 use crate::batch::{Save, ViewOptions};
 use crate::engine::Engine;
 use crate::error::Error;
@@ -51,6 +68,87 @@ pub struct ApplyJob {
     pub command_line: Vec<String>,
     /// Show a progress bar (it hides itself when stderr is not a terminal).
     pub progress: bool,
+    /// Run only this part of the inputs, into its own subfolder of `out_dir`.
+    pub shard: Option<Shard>,
+    /// Reuse results of an earlier run of the same job (see the module header).
+    pub resume: bool,
+}
+
+impl ApplyJob {
+    /// The folder this run writes into: `out_dir`, or its shard subfolder.
+    pub fn run_dir(&self) -> PathBuf {
+        match self.shard {
+            Some(s) => self.out_dir.join(s.folder()),
+            None => self.out_dir.clone(),
+        }
+    }
+
+    /// Digest of everything that decides an input's outputs; journal entries
+    /// with another digest are never reused.
+    pub fn digest(&self) -> String {
+        let key = serde_json::json!({
+            "version": env!("CARGO_PKG_VERSION"),
+            "recipe": recipe_json(&self.spec),
+            "save": self.save.to_string(),
+            "view_range": self.view.range.map(|(a, b)| [a, b]),
+            "view_depth16": self.view.depth16,
+            "threshold": self.threshold,
+            "engine": self.engine.name(),
+        });
+        hex(&Sha256::digest(key.to_string().as_bytes()))
+    }
+}
+
+/// The journal of finished inputs, in the run's folder.
+pub const JOURNAL: &str = "journal.jsonl";
+
+/// One journal line.
+#[derive(serde::Serialize, serde::Deserialize)]
+struct JournalLine {
+    job: String,
+    done: Finished,
+}
+
+/// Reads the journal entries tagged `job`, by path (the last entry of a path
+/// wins). Lines that do not parse, such as one cut short by a crash, are skipped.
+pub fn read_journal(path: &Path, job: Option<&str>) -> Vec<Finished> {
+    let Ok(text) = std::fs::read_to_string(path) else {
+        return Vec::new();
+    };
+    let mut by_path: std::collections::BTreeMap<String, Finished> = Default::default();
+    for line in text.lines() {
+        if let Ok(l) = serde_json::from_str::<JournalLine>(line) {
+            if job.map_or(true, |j| j == l.job) {
+                by_path.insert(l.done.path.clone(), l.done);
+            }
+        }
+    }
+    by_path.into_values().collect()
+}
+
+fn journal_line(job: &str, done: &Finished) -> Result<String, Error> {
+    let line = JournalLine {
+        job: job.to_string(),
+        done: done.clone(),
+    };
+    serde_json::to_string(&line)
+        .map(|s| s + "\n")
+        .map_err(|e| Error::Stage(format!("journal: {e}")))
+}
+
+/// The signal that asked the run to stop (0: none). Set from a signal handler.
+pub fn stop_signal() -> &'static Arc<AtomicUsize> {
+    static STOP: OnceLock<Arc<AtomicUsize>> = OnceLock::new();
+    STOP.get_or_init(|| Arc::new(AtomicUsize::new(0)))
+}
+
+/// Whether a stop was requested.
+pub fn stop_requested() -> bool {
+    stop_signal().load(Ordering::SeqCst) != 0
+}
+
+fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
 }
 
 /// What a finished run did.
@@ -64,6 +162,12 @@ pub struct Summary {
     pub files: usize,
     /// Wall time in seconds.
     pub seconds: f64,
+    /// Inputs whose results were taken over from an earlier run (`--resume`).
+    pub resumed: usize,
+    /// Inputs not started because a stop was requested.
+    pub not_run: usize,
+    /// The folder the run wrote into.
+    pub dir: PathBuf,
 }
 
 /// Checks that the recipe's first conv stage fits the colour mode, before any work.
@@ -99,11 +203,24 @@ pub fn check_channels(spec: &RecipeSpec) -> Result<(), Error> {
 /// Work inside `f` may use the rayon pool (the conv engine does); the workers are
 /// not rayon threads, so they never pick up another item while waiting for it.
 pub fn for_each_parallel<T: Sync>(items: &[T], jobs: usize, f: impl Fn(usize, &T) + Sync) {
+    for_each_parallel_until(items, jobs, || false, f)
+}
+
+/// [`for_each_parallel`] that takes no new item once `stop()` is true.
+pub fn for_each_parallel_until<T: Sync>(
+    items: &[T],
+    jobs: usize,
+    stop: impl Fn() -> bool + Sync,
+    f: impl Fn(usize, &T) + Sync,
+) {
     let next = AtomicUsize::new(0);
     let workers = jobs.clamp(1, items.len().max(1));
     std::thread::scope(|scope| {
         for _ in 0..workers {
             scope.spawn(|| loop {
+                if stop() {
+                    break;
+                }
                 let i = next.fetch_add(1, Ordering::Relaxed);
                 let Some(item) = items.get(i) else { break };
                 f(i, item);
@@ -133,7 +250,8 @@ pub fn safe_name(name: &str) -> String {
 }
 
 fn sha256_file(path: &Path) -> Result<String, Error> {
-    let mut f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+    let mut f =
+        std::fs::File::open(path).map_err(|e| crate::io::read::explain_open_error(path, e))?;
     let mut h = Sha256::new();
     let mut buf = vec![0u8; 1 << 16];
     loop {
@@ -143,22 +261,90 @@ fn sha256_file(path: &Path) -> Result<String, Error> {
         }
         h.update(&buf[..n]);
     }
-    Ok(h.finalize().iter().map(|b| format!("{b:02x}")).collect())
+    Ok(hex(&h.finalize()))
 }
 
 /// Runs the job. Set-up problems are `Err` before any image is read; a bad image
 /// is recorded, reported through `on_error` and skipped.
 pub fn run_apply(job: &ApplyJob, on_error: &(dyn Fn(&str) + Sync)) -> Result<Summary, Error> {
+    check_channels(&job.spec)?;
+    let mut items = expand_inputs(&job.inputs, &job.out_dir)?;
+    if let Some(s) = job.shard {
+        items.retain(|i| s.holds(&i.rel_string()));
+    }
+    run_items(job, items, on_error)
+}
+
+/// Removes temporary files (`.tapmap-*.part`) a killed run left in `dir`, without
+/// entering other runs' shard folders.
+fn remove_leftovers(dir: &Path) {
+    let walker = walkdir::WalkDir::new(dir).into_iter().filter_entry(|e| {
+        e.depth() == 0
+            || !(e.file_type().is_dir()
+                && Shard::from_folder(&e.file_name().to_string_lossy()).is_some())
+    });
+    for e in walker.flatten() {
+        let name = e.file_name().to_string_lossy();
+        if e.file_type().is_file() && name.starts_with(".tapmap-") && name.ends_with(".part") {
+            let _ = std::fs::remove_file(e.path());
+        }
+    }
+}
+
+/// Whether an earlier result can stand for `item` (see the module header).
+fn still_valid(prev: &Finished, item: &InputItem, dir: &Path) -> bool {
+    prev.ok
+        && item.problem.is_none()
+        && prev.outputs.iter().all(|(p, bytes)| {
+            std::fs::metadata(dir.join(p)).is_ok_and(|m| m.is_file() && m.len() == *bytes)
+        })
+        && prev.sha256.is_some()
+        && sha256_file(&item.source).ok() == prev.sha256
+}
+
+/// Runs the job over inputs already listed (and sharded): what [`run_apply`] does
+/// after listing.
+pub fn run_items(
+    job: &ApplyJob,
+    items: Vec<InputItem>,
+    on_error: &(dyn Fn(&str) + Sync),
+) -> Result<Summary, Error> {
     let started = SystemTime::now();
     let clock = Instant::now();
     check_channels(&job.spec)?;
-    let items = expand_inputs(&job.inputs, &job.out_dir)?;
-    std::fs::create_dir_all(&job.out_dir).map_err(|e| Error::io(&job.out_dir, e))?;
+    let dir = job.run_dir();
+    std::fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, e))?;
     tempfile::Builder::new()
         .prefix(".tapmap-probe")
-        .tempfile_in(&job.out_dir)
+        .tempfile_in(&dir)
         .map(drop)
-        .map_err(|e| Error::io(&job.out_dir, e))?;
+        .map_err(|e| Error::io(&dir, e))?;
+    remove_leftovers(&dir);
+    let key = job.digest();
+    let journal_path = dir.join(JOURNAL);
+    let earlier: std::collections::HashMap<String, Finished> = if job.resume {
+        read_journal(&journal_path, Some(&key))
+            .into_iter()
+            .map(|f| (f.path.clone(), f))
+            .collect()
+    } else {
+        Default::default()
+    };
+    let journal = Mutex::new(
+        std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .truncate(false)
+            .open(&journal_path)
+            .map_err(|e| Error::io(&journal_path, e))?,
+    );
+    if !job.resume {
+        journal
+            .lock()
+            .expect("not yet shared")
+            .set_len(0)
+            .map_err(|e| Error::io(&journal_path, e))?;
+    }
 
     let bar = if job.progress {
         let b =
@@ -172,41 +358,89 @@ pub fn run_apply(job: &ApplyJob, on_error: &(dyn Fn(&str) + Sync)) -> Result<Sum
         ProgressBar::hidden()
     };
     let table = colormap::table();
-    let results: Mutex<Vec<Option<ImageRecord>>> = Mutex::new(vec![None; items.len()]);
-    for_each_parallel(&items, job.jobs, |i, item| {
-        let record = process(job, item, &table);
-        if let Err(msg) = &record.status {
-            bar.suspend(|| on_error(&format!("{}: {msg}", item.source.display())));
-        }
+    let results: Mutex<Vec<Option<Finished>>> = Mutex::new(vec![None; items.len()]);
+    let resumed = AtomicUsize::new(0);
+    let journal_error: Mutex<Option<Error>> = Mutex::new(None);
+    for_each_parallel_until(&items, job.jobs, stop_requested, |i, item| {
+        let path = item.rel_string();
+        let done = match earlier.get(&path) {
+            Some(prev) if still_valid(prev, item, &dir) => {
+                resumed.fetch_add(1, Ordering::Relaxed);
+                prev.clone()
+            }
+            _ => {
+                let record = process(job, &dir, item, &table);
+                if let Err(msg) = &record.status {
+                    bar.suspend(|| on_error(&format!("{}: {msg}", item.source.display())));
+                }
+                let done = record.finish();
+                let appended = journal_line(&key, &done).and_then(|line| {
+                    let mut f = journal.lock().expect("no panics while holding the journal");
+                    // One write per line: a crash leaves at most one cut-short last line.
+                    f.write_all(line.as_bytes())
+                        .map_err(|e| Error::io(&journal_path, e))
+                });
+                if let Err(e) = appended {
+                    journal_error.lock().expect("no panics").get_or_insert(e);
+                }
+                done
+            }
+        };
         results
             .lock()
-            .expect("no worker panics while holding the lock")[i] = Some(record);
+            .expect("no worker panics while holding the lock")[i] = Some(done);
         bar.inc(1);
     });
     bar.finish_and_clear();
-    let records: Vec<ImageRecord> = results
-        .into_inner()
-        .expect("workers done")
-        .into_iter()
-        .map(|r| r.expect("every input processed"))
-        .collect();
-    let failed = records.iter().filter(|r| r.status.is_err()).count();
-    let files = write_tables(
-        job,
-        &records,
-        &table,
-        started,
-        clock.elapsed().as_secs_f64(),
-    )?;
+    if let Some(e) = journal_error.into_inner().expect("workers done") {
+        return Err(e);
+    }
+    let all = results.into_inner().expect("workers done");
+    let not_run = all.iter().filter(|r| r.is_none()).count();
+    let done: Vec<Finished> = all.into_iter().flatten().collect();
+    let failed = done.iter().filter(|d| !d.ok).count();
+    // The journal now holds exactly this run's results, in table order.
+    let mut text = String::new();
+    for d in &done {
+        text.push_str(&journal_line(&key, d)?);
+    }
+    crate::io::atomic::write_atomic(&journal_path, |w| w.write_all(text.as_bytes()))?;
+
+    let seconds = clock.elapsed().as_secs_f64();
+    let mut header = job_header(job, &table, started, seconds);
+    if let Some(s) = job.shard {
+        header.insert("shard".into(), serde_json::json!(s.to_string()));
+    }
+    let facts = RunFacts {
+        header,
+        stats: job.save.stats,
+        manifest: job.save.manifest,
+    };
+    let mut extra = serde_json::Map::new();
+    let resumed = resumed.into_inner();
+    if job.resume {
+        extra.insert("resumed".into(), serde_json::json!(resumed));
+    }
+    let signal = stop_signal().load(Ordering::SeqCst);
+    if not_run > 0 || signal != 0 {
+        extra.insert(
+            "interrupted".into(),
+            serde_json::json!({"signal": signal, "not_run": not_run}),
+        );
+    }
+    let files = write_tables(&dir, &facts, &done, extra)?;
     Ok(Summary {
-        processed: records.len() - failed,
+        processed: done.len() - failed,
         failed,
-        files: files + records.iter().map(|r| r.outputs.len()).sum::<usize>(),
+        files: files + 1 + done.iter().map(|d| d.outputs.len()).sum::<usize>(),
         seconds: clock.elapsed().as_secs_f64(),
+        resumed,
+        not_run,
+        dir,
     })
 }
 
-fn process(job: &ApplyJob, item: &InputItem, table: &[[u8; 3]]) -> ImageRecord {
+fn process(job: &ApplyJob, out: &Path, item: &InputItem, table: &[[u8; 3]]) -> ImageRecord {
     let mut rec = ImageRecord::new(item);
     let mut written: Vec<PathBuf> = Vec::new();
     let result = (|| -> Result<(), String> {
@@ -221,7 +455,18 @@ fn process(job: &ApplyJob, item: &InputItem, table: &[[u8; 3]]) -> ImageRecord {
             .spec
             .recipe_for(&img.channel_names)
             .map_err(|e| e.to_string())?;
-        let input_nonneg = vec![!img.meta.float; img.data.dim().0];
+        let (c, h, w) = img.data.dim();
+        let need = recipe
+            .peak_bytes(c, h, w, job.engine)
+            .map_err(|e| e.to_string())?;
+        if need > job.spec.input.max_memory {
+            return Err(format!(
+                "needs about {} MiB to run the recipe on its {w}×{h} pixels, over --max-memory ({} MiB)",
+                need >> 20,
+                job.spec.input.max_memory >> 20
+            ));
+        }
+        let input_nonneg = vec![!img.meta.float; c];
         let names = recipe.channel_names(img.data.dim().0);
         let nonneg = recipe.non_negative_channels(input_nonneg);
         let maps = recipe
@@ -229,6 +474,7 @@ fn process(job: &ApplyJob, item: &InputItem, table: &[[u8; 3]]) -> ImageRecord {
             .map_err(|e| e.to_string())?;
         write_outputs(
             job,
+            out,
             item,
             &img,
             &maps,
@@ -266,6 +512,7 @@ fn strip_path(e: Error, path: &Path) -> String {
 #[allow(clippy::too_many_arguments)]
 fn write_outputs(
     job: &ApplyJob,
+    out: &Path,
     item: &InputItem,
     img: &LoadedImage,
     maps: &Array3<f32>,
@@ -277,7 +524,6 @@ fn write_outputs(
 ) -> Result<(), String> {
     let (c, h, w) = maps.dim();
     let stem = item.stem_path();
-    let out = &job.out_dir;
     let mut record = |path: PathBuf, rec: &mut ImageRecord| -> Result<(), String> {
         let bytes = std::fs::metadata(&path)
             .map_err(|e| format!("{}: {e}", path.display()))?

@@ -76,6 +76,15 @@ enum Command {
         Hits of one kernel in one image never have overlapping receptive fields (they are at least\n\
         ceil(R/J) output pixels apart in x or y; R receptive field, J stride product).")]
     Probe(ProbeArgs),
+    /// Combine the shards of a job (OUT/shard-K-of-N) into the tables one run would write.
+    #[command(after_help = "Examples:\n  \
+        tapmap apply --recipe kernels/line-a-edges.recipe.toml --shard 1/2 --out runs/night captures\n  \
+        tapmap apply --recipe kernels/line-a-edges.recipe.toml --shard 2/2 --out runs/night captures\n  \
+        tapmap merge runs/night\n\n\
+        Writes OUT/stats.csv and OUT/images.csv, byte for byte what one run over all inputs\n\
+        writes, and OUT/manifest.json listing every shard's run and files. Maps, views and\n\
+        sheets stay in the shard folders.")]
+    Merge(MergeArgs),
     /// Built-in kernels and bank files: list, show, make, import, draw.
     #[command(subcommand)]
     Bank(BankCommand),
@@ -137,6 +146,14 @@ struct StageArgs {
     /// Do not apply the EXIF orientation; read pixels as stored.
     #[arg(long)]
     ignore_orientation: bool,
+    /// Refuse images with more pixels than N (checked from the header, before decoding).
+    #[arg(long, value_name = "N", default_value_t = crate::io::read::DEFAULT_MAX_PIXELS,
+          value_parser = clap::value_parser!(u64).range(1..))]
+    max_pixels: u64,
+    /// Memory one image may take to decode and run through the recipe (e.g. 512M, 8G);
+    /// larger images fail with a message and the run goes on [default: 4G].
+    #[arg(long, value_name = "BYTES", value_parser = parse_bytes)]
+    max_memory: Option<u64>,
     /// Conv strategy: auto (the planner chooses; `plan` shows the choice and why),
     /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks).
     #[arg(long, default_value = "auto", value_name = "ENGINE")]
@@ -165,6 +182,26 @@ struct ApplyArgs {
     /// Images processed at once, and threads [default: all cores].
     #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     jobs: Option<u32>,
+    /// Take up a run where it stopped: inputs whose outputs are in place and whose
+    /// journal entry matches (same file contents, recipe, banks, options, version)
+    /// are not redone; everything else is.
+    #[arg(long)]
+    resume: bool,
+    /// Run part K of N (1 ≤ K ≤ N) of the sorted inputs, into OUT/shard-K-of-N;
+    /// `auto` takes K and N from a Slurm job array, `auto/N` from a Kubernetes
+    /// indexed job (JOB_COMPLETION_INDEX) with N completions. Then `tapmap merge OUT`.
+    #[arg(long, value_name = "K/N|auto|auto/N")]
+    shard: Option<crate::batch::shard::ShardSpec>,
+}
+
+#[derive(Args)]
+struct MergeArgs {
+    /// The --out folder the shards wrote into (holding shard-K-of-N folders).
+    #[arg(value_name = "OUT")]
+    out: PathBuf,
+    /// Print nothing but errors.
+    #[arg(long, short = 'q')]
+    quiet: bool,
 }
 
 /// Output folder, quietness and inputs: the same for every command that reads images.
@@ -475,6 +512,10 @@ impl StageArgs {
         if self.ignore_orientation {
             spec.input.apply_orientation = false;
         }
+        spec.input.max_pixels = self.max_pixels;
+        if let Some(m) = self.max_memory {
+            spec.input.max_memory = m;
+        }
         Ok(spec)
     }
 
@@ -494,6 +535,55 @@ impl StageArgs {
             }
         })
     }
+}
+
+/// SIGINT and SIGTERM ask a run to stop: images in flight are finished, no new
+/// ones are started, tables are written for what is done, and the exit status is
+/// 128 + the signal (130, 143). A second signal ends the process at once.
+fn watch_stop_signals() -> Result<(), Error> {
+    use signal_hook::consts::{SIGINT, SIGTERM};
+    use std::sync::atomic::AtomicBool;
+    use std::sync::Arc;
+    let armed = Arc::new(AtomicBool::new(false));
+    for sig in [SIGINT, SIGTERM] {
+        let e = |e: std::io::Error| Error::Stage(format!("cannot watch signal {sig}: {e}"));
+        // Order matters: the exit check runs before the flag is set, so only a
+        // second signal finds it armed.
+        signal_hook::flag::register_conditional_shutdown(sig, 128 + sig, Arc::clone(&armed))
+            .map_err(e)?;
+        signal_hook::flag::register(sig, Arc::clone(&armed)).map_err(e)?;
+        signal_hook::flag::register_usize(
+            sig,
+            Arc::clone(crate::batch::run::stop_signal()),
+            sig as usize,
+        )
+        .map_err(e)?;
+    }
+    Ok(())
+}
+
+fn parse_bytes(s: &str) -> Result<u64, String> {
+    let t = s.trim();
+    let split = t.find(|c: char| !c.is_ascii_digit()).unwrap_or(t.len());
+    let (num, unit) = t.split_at(split);
+    let n: u64 = num
+        .parse()
+        .map_err(|_| format!("'{s}' is not a size such as 512M or 8G"))?;
+    let shift = match unit.trim().to_ascii_uppercase().as_str() {
+        "" | "B" => 0,
+        "K" | "KB" | "KIB" => 10,
+        "M" | "MB" | "MIB" => 20,
+        "G" | "GB" | "GIB" => 30,
+        "T" | "TB" | "TIB" => 40,
+        _ => {
+            return Err(format!(
+                "'{s}': unknown unit; use K, M, G or T (powers of 1024)"
+            ))
+        }
+    };
+    n.checked_mul(1u64 << shift)
+        .filter(|v| *v > 0)
+        .ok_or_else(|| format!("'{s}' is out of range"))
 }
 
 /// Exit status after a run over inputs: 1 when any failed.
@@ -554,6 +644,19 @@ fn run(cli: Cli) -> Result<i32, Error> {
             Ok(EXIT_OK)
         }
         Command::Borders(b) => borders_cmd(b),
+        Command::Merge(m) => {
+            let r = crate::batch::merge::merge(&m.out, std::env::args().collect())?;
+            if !m.quiet || r.failed > 0 {
+                eprintln!(
+                    "tapmap: merged {} shards: {} processed, {} failed; tables in {}",
+                    r.shards,
+                    r.processed,
+                    r.failed,
+                    m.out.display()
+                );
+            }
+            Ok(status(r.failed))
+        }
         Command::Probe(p) => probe_cmd(p),
         Command::Bank(BankCommand::Import {
             file,
@@ -687,23 +790,43 @@ fn apply(a: ApplyArgs) -> Result<i32, Error> {
         jobs,
         command_line: std::env::args().collect(),
         progress: !a.io.quiet,
+        shard: a
+            .shard
+            .map(|s| crate::batch::shard::resolve(s, &|k| std::env::var(k).ok()))
+            .transpose()?,
+        resume: a.resume,
     };
+    watch_stop_signals()?;
     let summary = run_apply(&job, &|msg| eprintln!("tapmap: {msg}"))?;
-    if !a.io.quiet || summary.failed > 0 {
+    let signal = crate::batch::run::stop_signal().load(std::sync::atomic::Ordering::SeqCst);
+    if !a.io.quiet || summary.failed > 0 || signal != 0 {
         let rate = if summary.seconds > 0.0 {
-            (summary.processed + summary.failed) as f64 / summary.seconds
+            (summary.processed + summary.failed - summary.resumed) as f64 / summary.seconds
         } else {
             0.0
         };
+        let mut extra = String::new();
+        if a.resume {
+            extra += &format!(", {} taken from the earlier run", summary.resumed);
+        }
+        if signal != 0 {
+            extra += &format!(
+                ", stopped by signal {signal} with {} not started (finish with --resume)",
+                summary.not_run
+            );
+        }
         eprintln!(
-            "tapmap: {} processed, {} failed, {:.2} s ({rate:.1} images/s); {} files in {} (see images.csv{})",
+            "tapmap: {} processed, {} failed{extra}, {:.2} s ({rate:.1} images/s); {} files in {} (see images.csv{})",
             summary.processed,
             summary.failed,
             summary.seconds,
             summary.files,
-            a.io.out.display(),
+            summary.dir.display(),
             if a.save.manifest { ", manifest.json" } else { "" }
         );
+    }
+    if signal != 0 {
+        return Ok(128 + signal as i32);
     }
     Ok(status(summary.failed))
 }

@@ -253,6 +253,22 @@ impl ConvStage {
         let mut kernels = Vec::with_capacity(self.bank.kernels.len());
         for (n, k) in self.bank.kernels.iter().enumerate() {
             let geometry = self.kernel_geometry(n, height, width)?;
+            // The padded copy of the input is the largest scratch buffer; its size
+            // is checked before anything is allocated.
+            geometry
+                .rows
+                .padded()
+                .checked_mul(geometry.cols.padded())
+                .and_then(|v| v.checked_mul(channels))
+                .filter(|v| *v <= isize::MAX as usize / std::mem::size_of::<f32>())
+                .ok_or_else(|| {
+                    Error::Geometry(format!(
+                        "kernel '{}': the padded input ({channels} × {} × {}) is too large to hold",
+                        k.name,
+                        geometry.rows.padded(),
+                        geometry.cols.padded()
+                    ))
+                })?;
             let planes: Vec<Vec<f64>> = (0..k.channels())
                 .map(|c| match op {
                     Op::Correlate => k.planes[c].clone(),

@@ -28,10 +28,10 @@ use crate::error::Error;
 /// BT.709 luma weights for R, G, B (ITU-R BT.709-6, item 3.2).
 pub const BT709: [f32; 3] = [0.2126, 0.7152, 0.0722];
 
-/// Largest width or height decoded.
-pub const MAX_SIDE: u32 = 65_535;
-/// Largest decoder allocation in bytes.
-pub const MAX_ALLOC: u64 = 2 << 30;
+/// Default `--max-pixels`: 2^28 = 16384 × 16384.
+pub const DEFAULT_MAX_PIXELS: u64 = 1 << 28;
+/// Default `--max-memory` per image: 4 GiB.
+pub const DEFAULT_MAX_MEMORY: u64 = 4 << 30;
 
 /// How colour images become input channels.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
@@ -85,6 +85,10 @@ pub struct ReadOptions {
     pub white: Option<u32>,
     /// Apply the EXIF/TIFF orientation.
     pub apply_orientation: bool,
+    /// Refuse images with more pixels than this, before decoding them.
+    pub max_pixels: u64,
+    /// Bytes one image may take to decode and process.
+    pub max_memory: u64,
 }
 
 impl Default for ReadOptions {
@@ -93,6 +97,8 @@ impl Default for ReadOptions {
             color: ColorMode::Luma,
             white: None,
             apply_orientation: true,
+            max_pixels: DEFAULT_MAX_PIXELS,
+            max_memory: DEFAULT_MAX_MEMORY,
         }
     }
 }
@@ -154,9 +160,141 @@ pub fn read_luma(path: &Path) -> Result<LoadedImage, Error> {
     read_image(path, &ReadOptions::default())
 }
 
+/// A decoder's error in plain words: files cut short and damaged checksums are
+/// named as such, with the decoder's own words after them.
+fn decode_message(e: &image::ImageError) -> String {
+    let eof = matches!(e, image::ImageError::IoError(io) if io.kind() == std::io::ErrorKind::UnexpectedEof);
+    plain_decode_error(&e.to_string(), eof)
+}
+
+/// [`decode_message`] from a decoder's message text.
+pub(crate) fn plain_decode_error(text: &str, eof: bool) -> String {
+    let lower = text.to_ascii_lowercase();
+    let cut = eof
+        || [
+            "end of file",
+            "fill whole buffer",
+            "not enough bytes",
+            "unexpected eof",
+            "truncated",
+        ]
+        .iter()
+        .any(|w| lower.contains(w));
+    let detail = text.split_whitespace().collect::<Vec<_>>().join(" ");
+    let detail = detail.trim_end_matches('.');
+    if cut {
+        format!("is truncated: the file ends before its image data does (decoder: {detail})")
+    } else if lower.contains("crc") || lower.contains("checksum") {
+        format!("is damaged: a checksum does not match its data (decoder: {detail})")
+    } else {
+        format!("cannot decode: {detail}")
+    }
+}
+
+/// Checks that a JPEG file runs to its end-of-image marker: the JPEG decoder
+/// fills a stream that stops early with grey and reports nothing, so a capture
+/// cut short in transfer would otherwise give maps of made-up pixels. Walks the
+/// marker segments and entropy-coded data as ITU-T T.81 §B.1 lays them out
+/// (written here: no crate offers a check without a full decode).
+fn jpeg_complete(path: &Path) -> Result<(), Error> {
+    let data = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    jpeg_ends_whole(&data).map_err(|m| bad(path, m))
+}
+
+/// See [`jpeg_complete`]; `data` is the whole file.
+fn jpeg_ends_whole(data: &[u8]) -> Result<(), String> {
+    let cut = || "is truncated: the JPEG data stops before its end-of-image marker".to_string();
+    let mut i = 2; // SOI was checked by the format sniffing.
+    let mut in_scan = false;
+    loop {
+        if in_scan {
+            // Entropy-coded data: skip to the next 0xFF.
+            i += data
+                .get(i..)
+                .and_then(|d| d.iter().position(|&b| b == 0xFF))
+                .ok_or_else(cut)?;
+        }
+        if *data.get(i).ok_or_else(cut)? != 0xFF {
+            return Err("is damaged: a JPEG marker is missing where one must be".into());
+        }
+        // Fill bytes (0xFF) may precede a marker.
+        while data.get(i) == Some(&0xFF) {
+            i += 1;
+        }
+        let m = *data.get(i).ok_or_else(cut)?;
+        i += 1;
+        match m {
+            0x00 | 0xD0..=0xD7 if in_scan => {} // stuffed byte, restart marker
+            0xD9 => return Ok(()),
+            0x01 | 0xD0..=0xD7 => {}
+            _ => {
+                let len = data.get(i..i + 2).ok_or_else(cut)?;
+                let len = u16::from_be_bytes([len[0], len[1]]) as usize;
+                i += len;
+                if i > data.len() {
+                    return Err(cut());
+                }
+                in_scan = m == 0xDA;
+            }
+        }
+    }
+}
+
+/// Checks an image's size against `--max-pixels` before it is decoded.
+pub fn check_pixels(w: u64, h: u64, opts: &ReadOptions) -> Result<(), String> {
+    let px = w.saturating_mul(h);
+    if px > opts.max_pixels {
+        return Err(format!(
+            "is {w}×{h} = {px} pixels, over the limit of {} pixels (--max-pixels)",
+            opts.max_pixels
+        ));
+    }
+    Ok(())
+}
+
 /// Reads an image file (see the module header for units, orientation, colour).
+/// Images with samples that are not finite (NaN, ±infinity) are refused: no
+/// convolution result near them would mean anything.
 pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error> {
-    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    let img = read_image_any(path, opts)?;
+    let bad_samples = img.data.iter().filter(|v| !v.is_finite()).count();
+    if bad_samples > 0 {
+        return Err(bad(
+            path,
+            format!(
+                "has {bad_samples} sample(s) that are not finite (NaN or infinite); \
+                 replace them before filtering"
+            ),
+        ));
+    }
+    Ok(img)
+}
+
+/// An error opening an input, in plain words for the cases a batch meets: a
+/// broken symbolic link, a file that went away after it was listed.
+pub fn explain_open_error(path: &Path, e: std::io::Error) -> Error {
+    match (
+        e.kind(),
+        std::fs::symlink_metadata(path),
+        std::fs::read_link(path),
+    ) {
+        (std::io::ErrorKind::NotFound, Ok(m), Ok(target)) if m.file_type().is_symlink() => bad(
+            path,
+            format!(
+                "is a symbolic link to {}, which does not exist",
+                target.display()
+            ),
+        ),
+        (std::io::ErrorKind::NotFound, Err(_), _) => bad(
+            path,
+            "is gone: it was listed but no longer exists (moved or deleted during the run?)",
+        ),
+        _ => Error::io(path, e),
+    }
+}
+
+fn read_image_any(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error> {
+    let meta = std::fs::metadata(path).map_err(|e| explain_open_error(path, e))?;
     if meta.is_dir() {
         return Err(bad(path, "is a folder, not an image file"));
     }
@@ -182,20 +320,47 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
     let format = image::guess_format(&head[..n]).map_err(|_| {
         bad(path, "is not an image: its first bytes match no format tapmap reads (PNG, JPEG, TIFF, BMP, PNM)")
     })?;
+    if format == image::ImageFormat::Jpeg {
+        jpeg_complete(path)?;
+    }
     let mut reader = ImageReader::open(path).map_err(|e| Error::io(path, e))?;
     reader.set_format(format);
+    // Sizes are checked here against --max-pixels with a plain message; the
+    // decoder's own limit caps what it may allocate.
     let mut limits = Limits::default();
-    limits.max_image_width = Some(MAX_SIDE);
-    limits.max_image_height = Some(MAX_SIDE);
-    limits.max_alloc = Some(MAX_ALLOC);
+    limits.max_image_width = None;
+    limits.max_image_height = None;
+    limits.max_alloc = Some(opts.max_memory);
     reader.limits(limits);
     let mut decoder = match reader.into_decoder() {
         Ok(d) => d,
         Err(image::ImageError::Unsupported(_)) if format == image::ImageFormat::Tiff => {
             return read_grey_float(path, opts);
         }
-        Err(e) => return Err(bad(path, format!("cannot decode: {e}"))),
+        Err(image::ImageError::Limits(e)) => {
+            return Err(bad(
+                path,
+                format!("is too large to decode within --max-memory ({e})"),
+            ))
+        }
+        Err(e) => return Err(bad(path, decode_message(&e))),
     };
+    let (w, h) = decoder.dimensions();
+    check_pixels(w as u64, h as u64, opts).map_err(|m| bad(path, m))?;
+    // Decoded samples plus the f32 planes made from them.
+    let need = decoder
+        .total_bytes()
+        .saturating_add((w as u64 * h as u64).saturating_mul(16));
+    if need > opts.max_memory {
+        return Err(bad(
+            path,
+            format!(
+                "needs about {} MiB to decode, over --max-memory ({} MiB)",
+                need >> 20,
+                opts.max_memory >> 20
+            ),
+        ));
+    }
     let mut info = ImageMeta::default();
     let exif_raw = decoder
         .exif_metadata()
@@ -235,8 +400,7 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
         (Err(_), false) => Orientation::NoTransforms,
         (Err(e), true) => return Err(e),
     };
-    let mut img = DynamicImage::from_decoder(decoder)
-        .map_err(|e| bad(path, format!("cannot decode: {e}")))?;
+    let mut img = DynamicImage::from_decoder(decoder).map_err(|e| bad(path, decode_message(&e)))?;
     if img.width() == 0 || img.height() == 0 {
         return Err(bad(path, "has zero width or height"));
     }
@@ -255,10 +419,14 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
 /// grey, three are r, g, b; other counts are channels c0, c1, … (split mode
 /// only). Arrays carry no orientation.
 fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedImage, Error> {
-    if size > MAX_ALLOC {
+    if size.saturating_mul(2) > opts.max_memory {
         return Err(bad(
             path,
-            format!("is {size} bytes, over the {MAX_ALLOC}-byte limit"),
+            format!(
+                "is {} MiB, too large to read within --max-memory ({} MiB)",
+                size >> 20,
+                opts.max_memory >> 20
+            ),
         ));
     }
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
@@ -280,12 +448,7 @@ fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedIm
     if c == 0 || h == 0 || w == 0 {
         return Err(bad(path, format!("has a zero-sized dimension {shape:?}")));
     }
-    if h > MAX_SIDE as usize || w > MAX_SIDE as usize {
-        return Err(bad(
-            path,
-            format!("is {w}×{h}, over the limit of {MAX_SIDE} pixels a side"),
-        ));
-    }
+    check_pixels(w as u64, h as u64, opts).map_err(|m| bad(path, m))?;
     let mut info = ImageMeta {
         width: w as u32,
         height: h as u32,
@@ -346,8 +509,20 @@ fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedIm
 /// `tiff` crate, carried through the same orientation code as an RGB float image
 /// with equal channels, then taken back to one channel.
 fn read_grey_float(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error> {
-    let (w, h, samples, tag) =
-        crate::io::tiff::read_grey_float_tiff(path, MAX_SIDE).map_err(|m| bad(path, m))?;
+    let (w, h, samples, tag) = crate::io::tiff::read_grey_float_tiff(path, &|w, h| {
+        check_pixels(w as u64, h as u64, opts)?;
+        // Samples as f64 at worst, then three f32 copies while orienting.
+        let need = (w as u64 * h as u64).saturating_mul(20);
+        if need > opts.max_memory {
+            return Err(format!(
+                "needs about {} MiB to decode, over --max-memory ({} MiB)",
+                need >> 20,
+                opts.max_memory >> 20
+            ));
+        }
+        Ok(())
+    })
+    .map_err(|m| bad(path, m))?;
     let mut info = ImageMeta {
         width: w,
         height: h,

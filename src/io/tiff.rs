@@ -24,22 +24,20 @@ pub fn write_f32_tiff(path: &Path, plane: &[f32], w: usize, h: usize) -> Result<
 /// grey float layout): `(width, height, samples, orientation tag)`.
 pub fn read_grey_float_tiff(
     path: &Path,
-    max_side: u32,
+    check: &dyn Fn(u32, u32) -> Result<(), String>,
 ) -> Result<(u32, u32, Vec<f32>, Option<u16>), String> {
     use tiff::decoder::{Decoder, DecodingResult, Limits};
     use tiff::tags::Tag;
     let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
-    let mut d =
-        Decoder::new(std::io::BufReader::new(f)).map_err(|e| format!("cannot decode: {e}"))?;
-    let (w, h) = d.dimensions().map_err(|e| format!("cannot decode: {e}"))?;
+    let mut d = Decoder::new(std::io::BufReader::new(f))
+        .map_err(|e| crate::io::read::plain_decode_error(&e.to_string(), false))?;
+    let (w, h) = d
+        .dimensions()
+        .map_err(|e| crate::io::read::plain_decode_error(&e.to_string(), false))?;
     if w == 0 || h == 0 {
         return Err("has zero width or height".into());
     }
-    if w > max_side || h > max_side {
-        return Err(format!(
-            "is {w}×{h}, over the limit of {max_side} pixels a side"
-        ));
-    }
+    check(w, h)?;
     let mut limits = Limits::default();
     limits.decoding_buffer_size = (w as usize).saturating_mul(h as usize).saturating_mul(8);
     let mut d = d.with_limits(limits);
@@ -48,7 +46,10 @@ pub fn read_grey_float_tiff(
         .ok()
         .flatten()
         .and_then(|v| v.into_u16().ok());
-    let samples = match d.read_image().map_err(|e| format!("cannot decode: {e}"))? {
+    let samples = match d
+        .read_image()
+        .map_err(|e| crate::io::read::plain_decode_error(&e.to_string(), false))?
+    {
         DecodingResult::F32(v) => v,
         DecodingResult::F64(v) => v.into_iter().map(|x| x as f32).collect(),
         _ => return Err("is a TIFF layout tapmap does not read".into()),

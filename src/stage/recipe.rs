@@ -140,6 +140,38 @@ impl Recipe {
         Ok(plans)
     }
 
+    /// Bytes of f32 samples held at the busiest point of a run over an input of
+    /// `channels × height × width`: one stage's input, its padded copy and its
+    /// output. Checked arithmetic throughout; an overflow is an error.
+    pub fn peak_bytes(
+        &self,
+        channels: usize,
+        height: usize,
+        width: usize,
+        engine: Engine,
+    ) -> Result<u64, Error> {
+        let too_big = || Error::Stage("the recipe's buffers for this input overflow".into());
+        let count = |(c, h, w): (usize, usize, usize)| {
+            (c as u64)
+                .checked_mul(h as u64)
+                .and_then(|v| v.checked_mul(w as u64))
+        };
+        let mut peak = 0u64;
+        for p in self.plan(channels, height, width, engine)? {
+            let padded = match p.padding {
+                Some((t, b, l, r)) => count((p.input.0, p.input.1 + t + b, p.input.2 + l + r)),
+                None => Some(0),
+            };
+            let bytes = [count(p.input), padded, count(p.output)]
+                .into_iter()
+                .try_fold(0u64, |acc, v| acc.checked_add(v?))
+                .and_then(|v| v.checked_mul(4))
+                .ok_or_else(too_big)?;
+            peak = peak.max(bytes);
+        }
+        Ok(peak)
+    }
+
     /// Runs every stage over `input` (`C × H × W`), returning the final maps.
     pub fn run(&self, input: Array3<f32>, engine: Engine) -> Result<Array3<f32>, Error> {
         let mut x = input;
