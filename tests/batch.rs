@@ -993,3 +993,71 @@ fn npy_arrays_go_in_as_images() {
         .collect();
     assert_eq!(names, ["identity@r", "identity@g", "identity@b"]);
 }
+
+#[test]
+fn names_that_would_escape_the_output_folder_are_made_safe() {
+    // Kernel names become file names of views and TIFFs; input names become
+    // output paths. None may lead outside --out, whatever they contain.
+    let t = TempDir::new().unwrap();
+    let bank = t.path().join("odd.toml");
+    std::fs::write(
+        &bank,
+        "name = \"../../bank\"\nop = \"correlate\"\n\
+         [[kernel]]\nname = \"../../../escaped\"\nfamily = \"sobel-x\"\n\
+         [[kernel]]\nname = \"/etc/abs\"\nfamily = \"sobel-y\"\n\
+         [[kernel]]\nname = \"a\\\\b:c*?<>|\\\"d\"\nfamily = \"box\"\n",
+    )
+    .unwrap();
+    let inp = t.path().join("in");
+    grey8(&inp.join("..dots.png"), 9, 7, 1);
+    grey8(&inp.join("sub/x.png"), 9, 7, 2);
+    // Dots inside a name are kept: two versions of a tile write two maps.
+    grey8(&inp.join("tile.v2.png"), 9, 7, 3);
+    grey8(&inp.join("tile.v3.png"), 9, 7, 4);
+    let work = t.path().join("work");
+    std::fs::create_dir_all(&work).unwrap();
+    let out = work.join("out");
+    tapmap()
+        .args(["apply", "--save", "all", "-q", "--bank"])
+        .arg(&bank)
+        .arg("-o")
+        .arg(&out)
+        .arg(&inp)
+        .assert()
+        .success();
+    // Everything the run wrote is below `out`; `work` holds nothing else.
+    let entries: Vec<_> = std::fs::read_dir(&work)
+        .unwrap()
+        .map(|e| e.unwrap().file_name())
+        .collect();
+    assert_eq!(entries, vec![std::ffi::OsString::from("out")]);
+    let mut names = Vec::new();
+    for e in walkdir::WalkDir::new(t.path()) {
+        let e = e.unwrap();
+        if e.file_type().is_file() {
+            let p = e.path();
+            assert!(
+                p.starts_with(&out) || p.starts_with(&inp) || p == bank,
+                "written outside --out: {}",
+                p.display()
+            );
+            if p.starts_with(out.join("views")) {
+                names.push(p.file_name().unwrap().to_string_lossy().into_owned());
+            }
+        }
+    }
+    names.sort();
+    names.dedup();
+    for n in &names {
+        assert!(
+            n.chars()
+                .all(|c| c.is_ascii_alphanumeric() || "-_.@=+".contains(c)),
+            "unsafe file name {n}"
+        );
+        assert!(!n.contains(".."), "{n}");
+    }
+    assert_eq!(names.len(), 3, "{names:?}");
+    for m in ["..dots.npy", "sub/x.npy", "tile.v2.npy", "tile.v3.npy"] {
+        assert!(out.join("maps").join(m).is_file(), "{m}");
+    }
+}

@@ -296,7 +296,10 @@ fn pools() {
         },
     };
     let e = too_big.apply(&img).unwrap_err().to_string();
-    assert!(e.contains("window height 5 is larger than its input height 4"), "{e}");
+    assert!(
+        e.contains("window height 5 is larger than its input height 4"),
+        "{e}"
+    );
     let mut nan = img.clone();
     nan[[0, 1, 1]] = f32::NAN;
     let out = Pool {

@@ -42,6 +42,15 @@ impl InputItem {
         self.rel.with_extension("")
     }
 
+    /// The output file `folder/<stem path>.<ext>`. The extension is added, never
+    /// swapped, so `tile.v2.png` gives `tile.v2.npy`, not `tile.npy`.
+    pub fn output_file(&self, folder: &Path, ext: &str) -> PathBuf {
+        let mut name = folder.join(self.stem_path()).into_os_string();
+        name.push(".");
+        name.push(ext);
+        PathBuf::from(name)
+    }
+
     /// `rel` with `/` separators, for CSVs and the manifest.
     pub fn rel_string(&self) -> String {
         let parts: Vec<String> = self

@@ -229,16 +229,22 @@ pub fn for_each_parallel_until<T: Sync>(
     });
 }
 
-/// Makes a name safe as one file-name component.
+/// Makes a name safe as one file-name component: letters, digits and `-_.@=+`
+/// only, no leading dot and no `..` anywhere.
 pub fn safe_name(name: &str) -> String {
+    let mut prev = ' ';
     let s: String = name
         .chars()
         .map(|c| {
-            if c.is_ascii_alphanumeric() || "-_.@=+".contains(c) {
+            let c = if (c.is_ascii_alphanumeric() || "-_.@=+".contains(c))
+                && !(c == '.' && prev == '.')
+            {
                 c
             } else {
                 '_'
-            }
+            };
+            prev = c;
+            c
         })
         .collect();
     let s = s.trim_start_matches('.').to_string();
@@ -543,7 +549,7 @@ fn write_outputs(
     let file_of = |k: usize, ext: &str| format!("{k:02}-{}.{ext}", safe_name(&names[k]));
 
     if job.save.maps {
-        let p = out.join("maps").join(&stem).with_extension("npy");
+        let p = item.output_file(&out.join("maps"), "npy");
         ensure_dir(&p)?;
         crate::io::npy::write_npy(&p, maps).map_err(|e| e.to_string())?;
         record(p, rec)?;
@@ -597,7 +603,7 @@ fn write_outputs(
         }
         if job.save.sheets {
             let s = sheet::sheet(&item.rel_string(), &cells);
-            let p = out.join("sheets").join(&stem).with_extension("png");
+            let p = item.output_file(&out.join("sheets"), "png");
             ensure_dir(&p)?;
             write_png(
                 &p,

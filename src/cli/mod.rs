@@ -886,7 +886,7 @@ fn borders_cmd(b: BordersArgs) -> Result<i32, Error> {
             let stem = item.stem_path();
             bo::write_difference_views(&b.io.out.join("views").join(&stem), &st, &modes)?;
             let curves = bo::curves(&st);
-            let plot = b.io.out.join("plots").join(&stem).with_extension("png");
+            let plot = item.output_file(&b.io.out.join("plots"), "png");
             std::fs::create_dir_all(plot.parent().unwrap_or(&b.io.out))
                 .map_err(|e| Error::io(&plot, e))?;
             let what = if crop.is_some() {
