@@ -780,19 +780,36 @@ fn results_do_not_depend_on_the_number_of_jobs() {
             .success();
         out
     };
-    let a = run("1", "a");
-    let b = run("3", "b");
-    for f in [
-        "stats.csv",
-        "images.csv",
-        "maps/1/img07.npy",
-        "views/2/img11/01-sobel-y.png",
-    ] {
-        assert_eq!(
-            std::fs::read(a.join(f)).unwrap(),
-            std::fs::read(b.join(f)).unwrap(),
-            "{f}"
-        );
+    // Every file (maps, views, both CSVs, the journal) byte for byte, whatever
+    // the number of workers and the order they finish in.
+    let files = |dir: &Path| -> Vec<(PathBuf, Vec<u8>)> {
+        let mut v: Vec<(PathBuf, Vec<u8>)> = walkdir::WalkDir::new(dir)
+            .into_iter()
+            .map(|e| e.unwrap())
+            .filter(|e| e.file_type().is_file() && e.file_name() != "manifest.json")
+            .map(|e| {
+                (
+                    e.path().strip_prefix(dir).unwrap().to_path_buf(),
+                    std::fs::read(e.path()).unwrap(),
+                )
+            })
+            .collect();
+        v.sort();
+        v
+    };
+    let a = files(&run("1", "a"));
+    assert_eq!(
+        a.len(),
+        12 * 4 + 3,
+        "maps, views, stats.csv, images.csv, journal"
+    );
+    for (jobs, name) in [("2", "b"), ("5", "c")] {
+        let b = files(&run(jobs, name));
+        assert_eq!(a.len(), b.len());
+        for ((pa, da), (pb, db)) in a.iter().zip(&b) {
+            assert_eq!(pa, pb);
+            assert!(da == db, "{} differs with --jobs {jobs}", pa.display());
+        }
     }
 }
 
@@ -1059,5 +1076,47 @@ fn names_that_would_escape_the_output_folder_are_made_safe() {
     assert_eq!(names.len(), 3, "{names:?}");
     for m in ["..dots.npy", "sub/x.npy", "tile.v2.npy", "tile.v3.npy"] {
         assert!(out.join("maps").join(m).is_file(), "{m}");
+    }
+}
+
+#[test]
+fn pixel_and_memory_limits_refuse_one_image_and_keep_going() {
+    let t = TempDir::new().unwrap();
+    grey8(&t.path().join("in/big.png"), 64, 64, 1);
+    grey8(&t.path().join("in/small.png"), 8, 8, 2);
+    // (flags, what the big image's message must say). Sizes for a 64×64 8-bit
+    // grey image: decoding takes 4096 B of samples + 16 B a pixel of planes
+    // (68 KiB); the edges bank under `same` holds the 16 KiB input, its padded
+    // copy (66×66×4 B) and three 16 KiB maps (about 81 KiB).
+    for (flags, says) in [
+        (
+            ["--max-pixels", "1000"],
+            "64×64 = 4096 pixels, over the limit of 1000 pixels",
+        ),
+        (
+            ["--max-memory", "10K"],
+            "to decode, over --max-memory (10.0 KiB)",
+        ),
+        (
+            ["--max-memory", "75K"],
+            "to run the recipe on its 64×64 pixels, over --max-memory (75.0 KiB)",
+        ),
+    ] {
+        let out = t.path().join(format!("out{}", flags[1]));
+        let a = tapmap()
+            .args(["apply", "--bank", "edges", "-q"])
+            .args(flags)
+            .arg("-o")
+            .arg(&out)
+            .arg(t.path().join("in"))
+            .assert()
+            .code(1);
+        let err = String::from_utf8_lossy(&a.get_output().stderr).into_owned();
+        assert!(
+            err.contains("big.png") && err.contains(says),
+            "{flags:?}: {err}"
+        );
+        assert!(out.join("maps/small.npy").is_file());
+        assert!(!out.join("maps/big.npy").exists());
     }
 }

@@ -467,9 +467,9 @@ fn process(job: &ApplyJob, out: &Path, item: &InputItem, table: &[[u8; 3]]) -> I
             .map_err(|e| e.to_string())?;
         if need > job.spec.input.max_memory {
             return Err(format!(
-                "needs about {} MiB to run the recipe on its {w}×{h} pixels, over --max-memory ({} MiB)",
-                need >> 20,
-                job.spec.input.max_memory >> 20
+                "needs about {} to run the recipe on its {w}×{h} pixels, over --max-memory ({})",
+                crate::io::read::bytes_text(need),
+                crate::io::read::bytes_text(job.spec.input.max_memory)
             ));
         }
         let input_nonneg = vec![!img.meta.float; c];

@@ -240,6 +240,21 @@ fn jpeg_ends_whole(data: &[u8]) -> Result<(), String> {
     }
 }
 
+/// A byte count for messages: `512 B`, `3.4 KiB`, `12.0 MiB`, `4.0 GiB`.
+pub fn bytes_text(n: u64) -> String {
+    const UNITS: [&str; 4] = ["KiB", "MiB", "GiB", "TiB"];
+    if n < 1024 {
+        return format!("{n} B");
+    }
+    let mut v = n as f64 / 1024.0;
+    let mut u = 0;
+    while v >= 1024.0 && u < UNITS.len() - 1 {
+        v /= 1024.0;
+        u += 1;
+    }
+    format!("{v:.1} {}", UNITS[u])
+}
+
 /// Checks an image's size against `--max-pixels` before it is decoded.
 pub fn check_pixels(w: u64, h: u64, opts: &ReadOptions) -> Result<(), String> {
     let px = w.saturating_mul(h);
@@ -355,9 +370,9 @@ fn read_image_any(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
         return Err(bad(
             path,
             format!(
-                "needs about {} MiB to decode, over --max-memory ({} MiB)",
-                need >> 20,
-                opts.max_memory >> 20
+                "needs about {} to decode, over --max-memory ({})",
+                bytes_text(need),
+                bytes_text(opts.max_memory)
             ),
         ));
     }
@@ -423,9 +438,9 @@ fn read_npy_image(path: &Path, opts: &ReadOptions, size: u64) -> Result<LoadedIm
         return Err(bad(
             path,
             format!(
-                "is {} MiB, too large to read within --max-memory ({} MiB)",
-                size >> 20,
-                opts.max_memory >> 20
+                "is {}, too large to read within --max-memory ({})",
+                bytes_text(size),
+                bytes_text(opts.max_memory)
             ),
         ));
     }
@@ -515,9 +530,9 @@ fn read_grey_float(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error
         let need = (w as u64 * h as u64).saturating_mul(20);
         if need > opts.max_memory {
             return Err(format!(
-                "needs about {} MiB to decode, over --max-memory ({} MiB)",
-                need >> 20,
-                opts.max_memory >> 20
+                "needs about {} to decode, over --max-memory ({})",
+                bytes_text(need),
+                bytes_text(opts.max_memory)
             ));
         }
         Ok(())
