@@ -18,6 +18,9 @@ fn every_regression_input_is_handled() {
             let _ = tapmap::kernel::bankfile::parse_bank(&String::from_utf8_lossy(&bytes), &p);
         } else if name.starts_with("recipe-") {
             let _ = tapmap::stage::recipefile::parse_recipe(&String::from_utf8_lossy(&bytes), &p);
+        } else if name.starts_with("image-") {
+            // The image reader works on paths, as a run does: read it in place.
+            let _ = tapmap::io::read::read_image(&p, &tapmap::io::read::ReadOptions::default());
         } else {
             continue;
         }
