@@ -132,5 +132,69 @@ fn matmul_threshold(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, engines, separable_threshold, matmul_threshold);
+/// Where the FFT strategy overtakes direct and matmul for kernels that are not
+/// rank 1 (sets `engine::FFT_FROM`): one random k×k kernel, and a bank of 8, on
+/// 1024², same extent, zero padding.
+fn fft_threshold(c: &mut Criterion) {
+    use tapmap::kernel::{Bank, Kernel, Op};
+    let mut g = c.benchmark_group("fft_threshold");
+    g.sample_size(10);
+    for (n, k) in [
+        (1, 7),
+        (1, 9),
+        (1, 11),
+        (1, 13),
+        (1, 15),
+        (1, 21),
+        (8, 7),
+        (8, 11),
+        (8, 15),
+    ] {
+        let kernels = (0..n)
+            .map(|i| Kernel {
+                name: format!("k{i}"),
+                rows: k,
+                cols: k,
+                planes: vec![(0..k * k)
+                    .map(|t| (((i * 31 + t * 13 + t * t) % 17) as f64 - 8.0) / 8.0)
+                    .collect()],
+                scale: 1.0,
+                bias: 0.0,
+                origin: None,
+            })
+            .collect();
+        let st = ConvStage {
+            bank: Bank {
+                name: "b".into(),
+                op: Op::Correlate,
+                description: None,
+                kernels,
+                normalize: None,
+            },
+            options: ConvOptions::default(),
+        };
+        let img = Array3::from_shape_fn((1, 1024, 1024), |(_, y, x)| {
+            ((x * 31 + y * 17) % 251) as f32 / 251.0
+        });
+        for engine in [Engine::Direct, Engine::Matmul, Engine::Fft] {
+            if engine == Engine::Matmul && n == 1 {
+                continue;
+            }
+            g.bench_with_input(
+                BenchmarkId::new(engine.name(), format!("{n}x{k}x{k}/1024")),
+                &img,
+                |b, img| b.iter(|| run_conv(&st, img, engine).expect("run")),
+            );
+        }
+    }
+    g.finish();
+}
+
+criterion_group!(
+    benches,
+    engines,
+    separable_threshold,
+    matmul_threshold,
+    fft_threshold
+);
 criterion_main!(benches);

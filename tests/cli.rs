@@ -488,3 +488,62 @@ fn bank_op_override_flips_the_taps() {
         "brightness rising to the right gives a positive response"
     );
 }
+
+#[test]
+fn every_engine_can_be_forced_from_the_command_line() {
+    // --engine takes every strategy by name; all give the same maps (to f32
+    // rounding), and plan shows the planner's choice with its reason.
+    let t = TempDir::new().unwrap();
+    let img = grey16(t.path(), "tile.png", 40, 33);
+    let mut maps = Vec::new();
+    for engine in ["auto", "reference", "direct", "separable", "matmul", "fft"] {
+        let out = t.path().join(engine);
+        tapmap()
+            .args([
+                "apply",
+                "--bank",
+                "log:sigma=2",
+                "--pad",
+                "reflect",
+                "-q",
+                "--engine",
+                engine,
+                "-o",
+            ])
+            .arg(&out)
+            .arg(&img)
+            .assert()
+            .success();
+        maps.push((engine, read_npy(&out.join("maps/tile.npy"))));
+    }
+    let (_, reference) = &maps[1];
+    let scale = reference.iter().fold(0.0f32, |m, v| m.max(v.abs()));
+    for (engine, m) in &maps {
+        let worst = m
+            .iter()
+            .zip(reference.iter())
+            .fold(0.0f32, |w, (a, b)| w.max((a - b).abs()));
+        assert!(worst <= 1e-5 * scale.max(1.0), "{engine}: off by {worst}");
+    }
+    let plan = tapmap()
+        .args(["plan", "--size", "512x512", "--bank", "log:sigma=2"])
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
+    let plan = String::from_utf8(plan).unwrap();
+    assert!(
+        plan.contains("fft") && plan.contains("taps per output"),
+        "{plan}"
+    );
+    tapmap()
+        .args([
+            "plan", "--size", "64x64", "--bank", "edges", "--engine", "gpu",
+        ])
+        .assert()
+        .code(2)
+        .stderr(predicates::str::contains(
+            "expected auto, reference, direct, separable, matmul or fft",
+        ));
+}

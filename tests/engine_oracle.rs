@@ -20,11 +20,12 @@ use tapmap::engine::{run_conv, ConvOptions, ConvStage, Engine};
 use tapmap::geometry::{Extent, PadWidth};
 use tapmap::kernel::{Bank, Kernel, Op};
 
-const ENGINES: [Engine; 4] = [
+const ENGINES: [Engine; 5] = [
     Engine::Reference,
     Engine::Direct,
     Engine::Separable,
     Engine::Matmul,
+    Engine::Fft,
 ];
 
 #[derive(Clone, Debug)]
@@ -330,7 +331,21 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
         Engine::Direct,
         "an 8-kernel 3×3 bank"
     );
-    assert_eq!(plan("log:sigma=2"), Engine::Direct, "LoG is not separable");
+    assert_eq!(
+        plan("log:sigma=1"),
+        Engine::Direct,
+        "LoG is not rank 1; 7×7"
+    );
+    assert_eq!(
+        plan("log:sigma=2"),
+        Engine::Fft,
+        "13×13 = 169 taps, not rank 1: at the measured FFT crossover"
+    );
+    assert_eq!(
+        plan("gaussian:sigma=5"),
+        Engine::Separable,
+        "large but rank 1: two 1-D passes beat any transform"
+    );
     // Learned banks: many kernels over several channels go to the matrix product.
     let learned = |n: usize, c: usize, k: usize| {
         let kernels = (0..n)
@@ -366,6 +381,16 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
         choose(&stage.prepare(c, 64, 64).unwrap(), Engine::Auto).engine
     };
     assert_eq!(learned(64, 3, 7), Engine::Matmul, "a 64×3×7×7 bank");
+    assert_eq!(
+        learned(8, 1, 31),
+        Engine::Fft,
+        "31×31 at stride 2: 240 taps per output"
+    );
+    assert_eq!(
+        learned(8, 1, 15),
+        Engine::Matmul,
+        "15×15 at stride 2: 56 taps per output"
+    );
     assert_eq!(learned(8, 1, 3), Engine::Direct, "an 8-kernel 3×3 bank");
     let mixed = ConvStage {
         bank: resolve_bank("smooth").unwrap(),
@@ -451,7 +476,7 @@ fn grid_of_small_images_and_kernels() {
 }
 
 #[test]
-fn direct_is_bit_identical_for_any_thread_count() {
+fn every_strategy_is_bit_identical_for_any_thread_count() {
     let (h, w) = (97, 131);
     let input = Array3::from_shape_vec(
         (2, h, w),
@@ -480,21 +505,101 @@ fn direct_is_bit_identical_for_any_thread_count() {
             ..ConvOptions::default()
         },
     };
+    let run = |engine: Engine, threads| {
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap()
+            .install(|| run_conv(&stage, &input, engine).unwrap())
+    };
+    // (The separable strategy falls back to direct: these kernels are not rank 1;
+    // the rank-1 case is covered with the separable tests.)
+    for engine in ENGINES {
+        let one = run(engine, 1);
+        for t in [2, 3, 8] {
+            let other = run(engine, t);
+            assert!(
+                one.iter()
+                    .zip(other.iter())
+                    .all(|(a, b)| a.to_bits() == b.to_bits()),
+                "{engine}: {t} threads differ"
+            );
+        }
+    }
+    // Rank-1 kernels, so that the separable strategy itself runs.
+    let rank1 = ConvStage {
+        bank: tapmap::kernel::builtin::resolve_bank("binomial:size=7+gaussian:sigma=1.5").unwrap(),
+        options: ConvOptions {
+            pad: PadMode::Symmetric,
+            ..ConvOptions::default()
+        },
+    };
+    let grey = input.slice(ndarray::s![0..1, .., ..]).to_owned();
     let run = |threads| {
         rayon::ThreadPoolBuilder::new()
             .num_threads(threads)
             .build()
             .unwrap()
-            .install(|| run_conv(&stage, &input, Engine::Direct).unwrap())
+            .install(|| run_conv(&rank1, &grey, Engine::Separable).unwrap())
     };
     let one = run(1);
     for t in [2, 3, 8] {
-        let other = run(t);
         assert!(
             one.iter()
-                .zip(other.iter())
+                .zip(run(t).iter())
                 .all(|(a, b)| a.to_bits() == b.to_bits()),
-            "{t} threads differ"
+            "separable: {t} threads differ"
         );
+    }
+}
+
+#[test]
+fn fft_tiles_equal_the_oracle_on_larger_images() {
+    // Images large enough that the FFT strategy cuts them into several tiles
+    // (overlap-save), with strides, dilation, several channels and every pad mode.
+    use tapmap::engine::fft::{fast_size, tile_side};
+    let mut seed = 7u64;
+    let mut next = || {
+        seed = seed
+            .wrapping_mul(6_364_136_223_846_793_005)
+            .wrapping_add(1_442_695_040_888_963_407);
+        ((seed >> 33) as f64 / (1u64 << 31) as f64) * 2.0 - 1.0
+    };
+    let configs = [
+        (1, 150, 130, 9, 9, PadMode::Zero, (1, 1), (1, 1)),
+        (2, 121, 140, 7, 5, PadMode::Reflect, (2, 3), (1, 1)),
+        (1, 97, 160, 5, 5, PadMode::Wrap, (1, 1), (3, 2)),
+        (3, 170, 150, 11, 11, PadMode::Symmetric, (2, 2), (1, 1)),
+        (1, 200, 64, 13, 3, PadMode::Replicate, (1, 2), (1, 1)),
+    ];
+    for (c, h, w, kh, kw, mode, stride, dilation) in configs {
+        let ekh = dilation.0 * (kh - 1) + 1;
+        assert!(
+            tile_side(ekh, h + ekh - 1) < fast_size(h + ekh - 1),
+            "case {h}×{w} {kh}×{kw} should need several tiles"
+        );
+        let case = Case {
+            channels: c,
+            h,
+            w,
+            input: (0..c * h * w).map(|_| next()).collect(),
+            kernels: (0..2)
+                .map(|_| OracleKernel {
+                    rows: kh,
+                    cols: kw,
+                    planes: (0..c)
+                        .map(|_| (0..kh * kw).map(|_| next()).collect())
+                        .collect(),
+                    scale: 0.5,
+                    bias: 0.25,
+                })
+                .collect(),
+            mode,
+            extent: Extent::Same,
+            stride,
+            dilation,
+            op: Op::Convolve,
+        };
+        check(&case).unwrap_or_else(|e| panic!("{e}"));
     }
 }

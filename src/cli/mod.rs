@@ -155,7 +155,8 @@ struct StageArgs {
     #[arg(long, value_name = "BYTES", value_parser = parse_bytes)]
     max_memory: Option<u64>,
     /// Conv strategy: auto (the planner chooses; `plan` shows the choice and why),
-    /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks).
+    /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks),
+    /// fft (large kernels that are not rank 1).
     #[arg(long, default_value = "auto", value_name = "ENGINE")]
     engine: Engine,
 }

@@ -16,7 +16,7 @@
 
 use rayon::prelude::*;
 
-use crate::engine::{pad_input, PreparedStage, Strategy};
+use crate::engine::{pad_input, OutPtr, PreparedStage, Strategy};
 
 /// Image-to-columns in row bands, then a matrix product per band.
 pub struct Matmul;
@@ -24,26 +24,6 @@ pub struct Matmul;
 /// Output samples per band: enough columns for an efficient product, few
 /// enough that the column buffer (K × this) stays in cache.
 const BAND_COLUMNS: usize = 2048;
-
-/// A raw pointer to the output that bands write through; each band writes a
-/// disjoint set of rows of every kernel's plane.
-#[derive(Clone, Copy)]
-struct OutPtr(*mut f32);
-// SAFETY: bands write disjoint output rows (see `run`), so sharing the pointer
-// between threads cannot produce overlapping writes.
-unsafe impl Send for OutPtr {}
-unsafe impl Sync for OutPtr {}
-
-impl OutPtr {
-    /// The pointer `offset` samples in. A method (not a field access) so that
-    /// closures capture the whole `OutPtr`, which is `Send`.
-    ///
-    /// # Safety
-    /// `offset` must lie inside the output.
-    unsafe fn at(self, offset: usize) -> *mut f32 {
-        unsafe { self.0.add(offset) }
-    }
-}
 
 impl Strategy for Matmul {
     fn name(&self) -> &'static str {

@@ -15,6 +15,7 @@
 //! ```
 
 pub mod direct;
+pub mod fft;
 pub mod matmul;
 pub mod reference;
 pub mod separable;
@@ -317,6 +318,28 @@ impl ConvStage {
     }
 }
 
+/// A raw pointer to a stage's output, for strategies whose parallel tasks write
+/// disjoint sets of output samples that are not one contiguous slice each (a band
+/// of rows in every kernel's plane, say). Each user states why its writes are
+/// disjoint.
+#[derive(Clone, Copy)]
+pub(crate) struct OutPtr(pub(crate) *mut f32);
+// SAFETY: users write disjoint samples from each task (see each strategy), so
+// sharing the pointer between threads cannot produce overlapping writes.
+unsafe impl Send for OutPtr {}
+unsafe impl Sync for OutPtr {}
+
+impl OutPtr {
+    /// The pointer `offset` samples in. A method (not a field access) so that
+    /// closures capture the whole `OutPtr`, which is `Send`.
+    ///
+    /// # Safety
+    /// `offset` must lie inside the output.
+    pub(crate) unsafe fn at(self, offset: usize) -> *mut f32 {
+        unsafe { self.0.add(offset) }
+    }
+}
+
 /// Which strategy runs a conv stage.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum Engine {
@@ -330,6 +353,8 @@ pub enum Engine {
     Separable,
     /// Image-to-columns in row bands and a matrix product per band.
     Matmul,
+    /// Products of discrete Fourier transforms, for large kernels.
+    Fft,
 }
 
 impl Engine {
@@ -341,6 +366,7 @@ impl Engine {
             Engine::Direct => "direct",
             Engine::Separable => "separable",
             Engine::Matmul => "matmul",
+            Engine::Fft => "fft",
         }
     }
 }
@@ -358,8 +384,11 @@ impl FromStr for Engine {
             "auto" => Ok(Engine::Auto),
             "reference" => Ok(Engine::Reference),
             "direct" => Ok(Engine::Direct),
+            "separable" => Ok(Engine::Separable),
+            "matmul" => Ok(Engine::Matmul),
+            "fft" => Ok(Engine::Fft),
             other => Err(format!(
-                "unknown engine '{other}'; expected auto, reference or direct"
+                "unknown engine '{other}'; expected auto, reference, direct, separable, matmul or fft"
             )),
         }
     }
@@ -396,6 +425,14 @@ pub const SEPARABLE_FROM: usize = 5;
 /// 271 ms against 79 ms.
 pub const MATMUL_FROM: usize = 128;
 
+/// Fewest taps per output sample (kernel taps ÷ stride area) from which the FFT
+/// strategy beats the others for kernels that are not rank 1. Measured with
+/// `cargo bench --bench engine -- fft_threshold` (medians on 1024², 2 cores, one
+/// of them busy): one kernel 11×11 ran 12.2 ms direct against 13.4 ms FFT, 13×13
+/// 15.8 against 12.2, 21×21 34.6 against 14.3; a bank of 8 ran 11×11 61 ms
+/// matmul against 70 ms FFT, 15×15 130 against 59.
+pub const FFT_FROM: usize = 169;
+
 /// Fewest kernels for the matrix product: with fewer, the product is close to a
 /// matrix-vector one and the column copy is not repaid.
 pub const MATMUL_MIN_KERNELS: usize = 8;
@@ -425,7 +462,21 @@ pub fn choose(stage: &PreparedStage, requested: Engine) -> Choice {
         engine: Engine::Direct,
         reason: why.to_string(),
     };
+    let separable_pays = all_separable && smallest >= SEPARABLE_FROM;
+    let taps_per_output = stage
+        .kernels
+        .iter()
+        .map(|k| k.rows * k.cols / (k.geometry.rows.stride * k.geometry.cols.stride).max(1))
+        .min()
+        .unwrap_or(0);
     match requested {
+        Engine::Auto if !separable_pays && taps_per_output >= FFT_FROM => Choice {
+            engine: Engine::Fft,
+            reason: format!(
+                "{taps_per_output} taps per output ≥ {FFT_FROM} and not rank 1: \
+                 a product of transforms costs the same for any kernel size"
+            ),
+        },
         Engine::Auto
             if uniform(stage)
                 && work >= MATMUL_FROM
@@ -468,6 +519,7 @@ fn strategy(engine: Engine) -> &'static dyn Strategy {
         Engine::Reference => &reference::Reference,
         Engine::Separable => &separable::Separable,
         Engine::Matmul => &matmul::Matmul,
+        Engine::Fft => &fft::Fft,
         Engine::Direct | Engine::Auto => &direct::Direct,
     }
 }
