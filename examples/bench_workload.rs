@@ -63,12 +63,15 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     }
     let recipe = Recipe { stages };
     let runs: usize = a[6].parse()?;
+    // TAPMAP_BENCH_FUSE=0 runs conv, act and pool one after another, to measure
+    // what running them in bands saves.
+    let fuse = std::env::var("TAPMAP_BENCH_FUSE").map_or(true, |v| v != "0");
     let mut times = Vec::with_capacity(runs);
     let mut out = None;
     for _ in 0..runs {
         let x = input.clone();
         let t = Instant::now();
-        let y = recipe.run(x, Engine::Auto)?;
+        let y = recipe.run_with(x, Engine::Auto, fuse)?;
         times.push(t.elapsed().as_secs_f64());
         out = Some(y);
     }

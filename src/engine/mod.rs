@@ -514,7 +514,7 @@ pub fn choose(stage: &PreparedStage, requested: Engine) -> Choice {
     }
 }
 
-fn strategy(engine: Engine) -> &'static dyn Strategy {
+pub(crate) fn strategy(engine: Engine) -> &'static dyn Strategy {
     match engine {
         Engine::Reference => &reference::Reference,
         Engine::Separable => &separable::Separable,
@@ -609,4 +609,103 @@ pub fn run_prepared(
         out,
     )
     .map_err(|e| Error::Stage(format!("output shape: {e}")))
+}
+
+/// Runs a prepared conv stage, then `act`, then a sized `pool`, in bands of
+/// pooled rows, so that the conv map is never held whole: the input is padded
+/// once, and each band computes just the conv rows its pool windows cover (rows
+/// shared by two bands' windows are computed by both). Every output sample is
+/// computed exactly as the unfused path computes it, so the result is
+/// bit-identical to `run_prepared`, then the activation, then the pool.
+///
+/// Returns `None` when the stage does not suit banding (kernels of different
+/// padding, a global pool, or the FFT strategy, whose tiles are planned over the
+/// whole image); the caller then runs the stages one by one.
+pub fn run_pooled(
+    prepared: &PreparedStage,
+    input: &Array3<f32>,
+    engine: Engine,
+    act: Option<crate::stage::Activation>,
+    pool: &crate::stage::Pool,
+) -> Result<Option<Array3<f32>>, Error> {
+    use crate::stage::PoolWindow;
+    use rayon::prelude::*;
+    let choice = choose(prepared, engine);
+    let g = prepared.kernels[0].geometry;
+    if choice.engine == Engine::Fft
+        || matches!(pool.window, PoolWindow::Global)
+        || prepared.kernels.iter().any(|k| k.geometry != g)
+    {
+        return Ok(None);
+    }
+    let (c, h, w) = input.dim();
+    if (c, h, w) != (prepared.channels, prepared.height, prepared.width) {
+        return Err(Error::Stage(format!(
+            "stage prepared for {}×{}×{} but given {c}×{h}×{w}",
+            prepared.channels, prepared.height, prepared.width
+        )));
+    }
+    let (oh, ow) = (prepared.out_height, prepared.out_width);
+    let (qh, qw) = pool.output_size(oh, ow)?;
+    let ((kh, _), (sh, _)) = pool.window_over(oh, ow);
+    let contiguous = input.as_standard_layout();
+    let data = contiguous.as_slice().expect("standard layout");
+    let mut padded = Vec::new();
+    pad_input(prepared, &g, data, &mut padded);
+    let (ph, pw) = (g.rows.padded(), g.cols.padded());
+    let ekh = g.rows.effective_kernel();
+    let sy = g.rows.stride;
+    let n = prepared.kernels.len();
+    // About 32 conv rows a band: enough work per task, little recomputed overlap.
+    let per_band = (32 / sh).max(1);
+    let bands: Vec<(usize, usize)> = (0..qh)
+        .step_by(per_band)
+        .map(|q0| (q0, (q0 + per_band).min(qh)))
+        .collect();
+    let results: Vec<Result<Vec<f32>, Error>> = bands
+        .par_iter()
+        .map(|&(q0, q1)| {
+            // Conv rows [r0, r1) feed pooled rows [q0, q1); padded rows [p0, p1) feed them.
+            let (r0, r1) = (q0 * sh, (q1 - 1) * sh + kh);
+            let (p0, p1) = (r0 * sy, (r1 - 1) * sy + ekh);
+            let bh = p1 - p0;
+            let mut band_in = Vec::with_capacity(c * bh * pw);
+            for ch in 0..c {
+                band_in.extend_from_slice(&padded[(ch * ph + p0) * pw..(ch * ph + p1) * pw]);
+            }
+            let mut band = prepared.clone();
+            band.height = bh;
+            band.width = pw;
+            band.out_height = r1 - r0;
+            for k in &mut band.kernels {
+                k.geometry.rows.input = bh;
+                k.geometry.rows.pad_before = 0;
+                k.geometry.rows.pad_after = 0;
+                k.geometry.rows.output = r1 - r0;
+                k.geometry.cols.input = pw;
+                k.geometry.cols.pad_before = 0;
+                k.geometry.cols.pad_after = 0;
+            }
+            let mut conv = vec![0.0f32; n * (r1 - r0) * ow];
+            strategy(choice.engine).run(&band, &band_in, &mut conv);
+            if let Some(a) = act {
+                a.apply(&mut conv);
+            }
+            let conv = Array3::from_shape_vec((n, r1 - r0, ow), conv)
+                .map_err(|e| Error::Stage(format!("band shape: {e}")))?;
+            Ok(pool.apply(&conv)?.into_raw_vec_and_offset().0)
+        })
+        .collect();
+    let mut out = vec![0.0f32; n * qh * qw];
+    for (&(q0, q1), r) in bands.iter().zip(results) {
+        let part = r?;
+        let rows = q1 - q0;
+        for k in 0..n {
+            out[(k * qh + q0) * qw..(k * qh + q1) * qw]
+                .copy_from_slice(&part[k * rows * qw..(k + 1) * rows * qw]);
+        }
+    }
+    Array3::from_shape_vec((n, qh, qw), out)
+        .map(Some)
+        .map_err(|e| Error::Stage(format!("output shape: {e}")))
 }

@@ -9,7 +9,7 @@
 
 use ndarray::Array3;
 
-use crate::engine::{choose, run_prepared, Choice, ConvStage, Engine};
+use crate::engine::{choose, run_pooled, run_prepared, Choice, ConvStage, Engine};
 use crate::error::Error;
 use crate::geometry::ReceptiveField;
 use crate::stage::{Activation, Pool};
@@ -174,8 +174,24 @@ impl Recipe {
 
     /// Runs every stage over `input` (`C × H × W`), returning the final maps.
     pub fn run(&self, input: Array3<f32>, engine: Engine) -> Result<Array3<f32>, Error> {
+        self.run_with(input, engine, true)
+    }
+
+    /// [`Recipe::run`], with `fuse` false: every stage whole, one after another
+    /// (what the fused path must equal bit for bit).
+    pub fn run_with(
+        &self,
+        input: Array3<f32>,
+        engine: Engine,
+        fuse: bool,
+    ) -> Result<Array3<f32>, Error> {
         let mut x = input;
+        let mut skip = 0;
         for (i, stage) in self.stages.iter().enumerate() {
+            if skip > 0 {
+                skip -= 1;
+                continue;
+            }
             let ctx =
                 |e: Error| Error::Stage(format!("stage {} ({}): {e}", i + 1, stage_kind(stage)));
             x = match stage {
@@ -185,7 +201,33 @@ impl Recipe {
                     if let Some(n) = &conv.bank.normalize {
                         n.apply(&mut x);
                     }
-                    run_prepared(&p, &x, engine).map_err(ctx)?
+                    // conv → (act) → pool in bands when a pool follows.
+                    let (act, pool) = match (self.stages.get(i + 1), self.stages.get(i + 2)) {
+                        (Some(Stage::Pool(p)), _) => (None, Some((p, 1))),
+                        (Some(Stage::Act(a)), Some(Stage::Pool(p))) => (Some(*a), Some((p, 2))),
+                        _ => (None, None),
+                    };
+                    let fused = match pool {
+                        Some((pool, n)) if fuse => {
+                            // The pool's own size check first, so its errors read as
+                            // they do unfused.
+                            let pool_ctx =
+                                |e: Error| Error::Stage(format!("stage {} (pool): {e}", i + 1 + n));
+                            pool.output_size(p.out_height, p.out_width)
+                                .map_err(pool_ctx)?;
+                            run_pooled(&p, &x, engine, act, pool)
+                                .map_err(ctx)?
+                                .map(|y| (y, n))
+                        }
+                        _ => None,
+                    };
+                    match fused {
+                        Some((y, n)) => {
+                            skip = n;
+                            y
+                        }
+                        None => run_prepared(&p, &x, engine).map_err(ctx)?,
+                    }
                 }
                 Stage::Act(a) => {
                     if let Some(s) = x.as_slice_mut() {
