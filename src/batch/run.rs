@@ -478,7 +478,7 @@ fn process(job: &ApplyJob, out: &Path, item: &InputItem, table: &[[u8; 3]]) -> I
         let maps = recipe
             .run(img.data.clone(), job.engine)
             .map_err(|e| e.to_string())?;
-        write_outputs(
+        let written_ok = write_outputs(
             job,
             out,
             item,
@@ -489,7 +489,10 @@ fn process(job: &ApplyJob, out: &Path, item: &InputItem, table: &[[u8; 3]]) -> I
             table,
             &mut rec,
             &mut written,
-        )
+        );
+        // The maps' memory serves this worker's next image.
+        crate::engine::recycle(maps);
+        written_ok
     })();
     if let Err(msg) = result {
         // Outputs of a failed image are removed, so no image is half there.

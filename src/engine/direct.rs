@@ -13,15 +13,16 @@
 
 use rayon::prelude::*;
 
-use crate::engine::{pad_input, PreparedKernel, PreparedStage, Strategy};
+use crate::engine::{pad_input, OutPtr, PreparedKernel, PreparedStage, Strategy};
 
 /// Padded rows, whole-row multiply-adds per tap.
 pub struct Direct;
 
-/// Rows per parallel task: enough work per task to hide scheduling costs.
+/// Rows per parallel task: enough work per task to hide scheduling costs, few
+/// enough that the input rows a band reads stay in cache across its kernels.
 fn band_rows(out_width: usize, taps: usize) -> usize {
     let per_row = (out_width * taps).max(1);
-    (32_768 / per_row).clamp(1, 64)
+    (65_536 / per_row).clamp(1, 32)
 }
 
 impl Strategy for Direct {
@@ -30,29 +31,53 @@ impl Strategy for Direct {
     }
 
     fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
-        let plane_out = st.out_height * st.out_width;
-        // Kernels with the same padding share one padded copy of the input.
+        let (oh, ow) = (st.out_height, st.out_width);
+        let plane_out = oh * ow;
+        assert!(out.len() >= st.kernels.len() * plane_out);
+        let dst = OutPtr(out.as_mut_ptr());
+        // Kernels with the same padding share one padded copy of the input, and
+        // each band of output rows is computed for all of them in turn, while
+        // the input rows it reads are still in cache.
         let mut padded: Vec<f32> = Vec::new();
-        let mut padded_for: Option<(usize, usize, usize, usize)> = None;
-        for (n, k) in st.kernels.iter().enumerate() {
-            let (gr, gc) = (k.geometry.rows, k.geometry.cols);
-            let pads = (gr.pad_before, gr.pad_after, gc.pad_before, gc.pad_after);
-            let (ph, pw) = (gr.padded(), gc.padded());
-            if padded_for != Some(pads) {
-                pad_input(st, &k.geometry, input, &mut padded);
-                padded_for = Some(pads);
+        let mut done = vec![false; st.kernels.len()];
+        for n0 in 0..st.kernels.len() {
+            if done[n0] {
+                continue;
             }
-            let dst = &mut out[n * plane_out..(n + 1) * plane_out];
-            let band = band_rows(st.out_width, k.taps.len());
+            let g0 = st.kernels[n0].geometry;
+            let pads = |k: &PreparedKernel| {
+                let (r, c) = (k.geometry.rows, k.geometry.cols);
+                (r.pad_before, r.pad_after, c.pad_before, c.pad_after)
+            };
+            let group: Vec<usize> = (n0..st.kernels.len())
+                .filter(|&n| !done[n] && pads(&st.kernels[n]) == pads(&st.kernels[n0]))
+                .collect();
+            pad_input(st, &g0, input, &mut padded);
+            let (ph, pw) = (g0.rows.padded(), g0.cols.padded());
+            let taps: usize = group.iter().map(|&n| st.kernels[n].taps.len()).sum();
+            let band = band_rows(ow, taps);
             let src = &padded[..];
-            dst.par_chunks_mut(band * st.out_width)
-                .enumerate()
-                .for_each(|(b, rows)| {
-                    for (r, row) in rows.chunks_exact_mut(st.out_width).enumerate() {
-                        conv_row(k, st.channels, src, (ph, pw), b * band + r, row);
+            let group = &group;
+            (0..oh.div_ceil(band)).into_par_iter().for_each(|b| {
+                for &n in group {
+                    let k = &st.kernels[n];
+                    for oy in b * band..((b + 1) * band).min(oh) {
+                        // SAFETY: band b alone writes rows [b·band, (b+1)·band) of
+                        // every kernel's plane; the row lies inside `out` (checked
+                        // length above).
+                        let row = unsafe {
+                            std::slice::from_raw_parts_mut(dst.at(n * plane_out + oy * ow), ow)
+                        };
+                        conv_row(k, st.channels, src, (ph, pw), oy, row);
                     }
-                });
+                }
+            });
+            for &n in group {
+                done[n] = true;
+            }
         }
+        // The scratch goes back for the next run on this thread.
+        crate::engine::give_back(padded);
     }
 }
 
@@ -82,10 +107,7 @@ fn conv_row(
                 }
                 let start = v * dx;
                 if sx == 1 {
-                    let seg = &line[start..start + ow];
-                    for (o, s) in row.iter_mut().zip(seg) {
-                        *o += t * s;
-                    }
+                    crate::engine::simd::axpy(row, t, &line[start..start + ow]);
                 } else {
                     let seg = &line[start..start + (ow - 1) * sx + 1];
                     for (o, s) in row.iter_mut().zip(seg.iter().step_by(sx)) {

@@ -224,6 +224,8 @@ impl Strategy for Fft {
                 done[n] = true;
             }
         }
+        // The scratch goes back for the next run on this thread.
+        crate::engine::give_back(padded);
     }
 }
 

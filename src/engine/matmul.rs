@@ -38,8 +38,8 @@ impl Strategy for Matmul {
         let kk = c * kh * kw;
         let (oh, ow) = (st.out_height, st.out_width);
         let n = st.kernels.len();
-        let mut padded = Vec::new();
-        pad_input(st, &k0.geometry, input, &mut padded);
+        let mut padded_buf = Vec::new();
+        pad_input(st, &k0.geometry, input, &mut padded_buf);
         let weights: Vec<f32> = st
             .kernels
             .iter()
@@ -49,7 +49,7 @@ impl Strategy for Matmul {
         let bands = oh.div_ceil(band);
         assert!(out.len() >= n * oh * ow);
         let dst = OutPtr(out.as_mut_ptr());
-        let padded = &padded[..];
+        let padded = &padded_buf[..];
         let weights = &weights[..];
         (0..bands)
             .into_par_iter()
@@ -112,5 +112,7 @@ impl Strategy for Matmul {
                     .for_each(|o| *o = *o * k.scale + k.bias);
             }
         }
+        // The scratch goes back for the next run on this thread.
+        crate::engine::give_back(padded_buf);
     }
 }

@@ -19,6 +19,7 @@ pub mod fft;
 pub mod matmul;
 pub mod reference;
 pub mod separable;
+pub mod simd;
 
 use std::fmt;
 use std::str::FromStr;
@@ -524,25 +525,74 @@ pub(crate) fn strategy(engine: Engine) -> &'static dyn Strategy {
     }
 }
 
-/// Asks Linux to back a large, not yet touched buffer with transparent huge
-/// pages. The first write to fresh memory otherwise costs a page fault per 4 KiB,
-/// which was measured to dominate a 3×3 bank over a large image (about 1 GB/s
-/// against 5 GB/s with huge pages on this kind of machine). A hint only: errors
-/// are ignored, and other systems do nothing.
-fn advise_huge_pages(buf: &mut [f32]) {
-    advise_huge_range(buf.as_mut_ptr(), buf.len());
-}
-
-/// An empty buffer with room for `len` samples, backed by huge pages where the
-/// system allows (see [`advise_huge_pages`]).
+/// An empty buffer with room for `len` samples: one this thread gave back with
+/// [`give_back`] when one is large enough, else a new one backed by huge pages
+/// where the system allows (see [`advise_huge_range`]). Memory already written
+/// once is several times faster to write than fresh memory, so a batch reuses
+/// the same few buffers image after image instead of allocating per image.
 pub(crate) fn fresh_buffer(len: usize) -> Vec<f32> {
+    if let Some(mut v) = SPARE.with(|s| {
+        let mut s = s.borrow_mut();
+        // The smallest spare that fits, so large ones stay for large requests.
+        let best = s
+            .iter()
+            .enumerate()
+            .filter(|(_, b)| b.capacity() >= len)
+            .min_by_key(|(_, b)| b.capacity())
+            .map(|(i, _)| i);
+        best.map(|i| s.swap_remove(i))
+    }) {
+        v.clear();
+        return v;
+    }
     let mut v = Vec::with_capacity(len);
     advise_huge_range(v.as_mut_ptr(), len);
     v
 }
 
-/// [`advise_huge_pages`] for `len` f32 slots from `ptr`, which may be a Vec's
-/// spare capacity (allocated, not yet written).
+/// Spare buffers per thread, and the most kept.
+const SPARE_SLOTS: usize = 4;
+/// Buffers larger than this (in samples, 1 GiB) are not kept.
+const SPARE_MAX: usize = 1 << 28;
+
+thread_local! {
+    static SPARE: std::cell::RefCell<Vec<Vec<f32>>> = const { std::cell::RefCell::new(Vec::new()) };
+}
+
+/// Keeps a buffer for this thread's next [`fresh_buffer`]; with all slots taken
+/// the smallest buffer is let go.
+pub(crate) fn give_back(v: Vec<f32>) {
+    if v.capacity() == 0 || v.capacity() > SPARE_MAX {
+        return;
+    }
+    SPARE.with(|s| {
+        let mut s = s.borrow_mut();
+        s.push(v);
+        if s.len() > SPARE_SLOTS {
+            let smallest = (0..s.len())
+                .min_by_key(|&i| s[i].capacity())
+                .expect("not empty");
+            s.swap_remove(smallest);
+        }
+    });
+}
+
+/// Hands a finished array's memory back for reuse by this thread's next run
+/// (see [`fresh_buffer`]). Call it when a map has been written and is no
+/// longer needed.
+pub fn recycle(a: Array3<f32>) {
+    let (v, offset) = a.into_raw_vec_and_offset();
+    if matches!(offset, None | Some(0)) {
+        give_back(v);
+    }
+}
+
+/// Asks Linux to back a large, not yet touched buffer with transparent huge
+/// pages. The first write to fresh memory otherwise costs a page fault per 4 KiB,
+/// which was measured to dominate a 3×3 bank over a large image (about 1 GB/s
+/// against 5 GB/s with huge pages on this kind of machine). A hint only: errors
+/// are ignored, and other systems do nothing.
+/// `ptr` may point at a Vec's spare capacity (allocated, not yet written).
 fn advise_huge_range(ptr: *mut f32, len: usize) {
     #[cfg(target_os = "linux")]
     {
@@ -586,8 +636,9 @@ pub fn run_prepared(
             prepared.channels, prepared.height, prepared.width
         )));
     }
-    let mut out = vec![0.0f32; prepared.output_len()?];
-    advise_huge_pages(&mut out);
+    let len = prepared.output_len()?;
+    let mut out = fresh_buffer(len);
+    out.resize(len, 0.0);
     let choice = choose(prepared, engine);
     let contiguous;
     let data = match input.as_slice() {
@@ -669,7 +720,7 @@ pub fn run_pooled(
             let (r0, r1) = (q0 * sh, (q1 - 1) * sh + kh);
             let (p0, p1) = (r0 * sy, (r1 - 1) * sy + ekh);
             let bh = p1 - p0;
-            let mut band_in = Vec::with_capacity(c * bh * pw);
+            let mut band_in = fresh_buffer(c * bh * pw);
             for ch in 0..c {
                 band_in.extend_from_slice(&padded[(ch * ph + p0) * pw..(ch * ph + p1) * pw]);
             }
@@ -686,14 +737,18 @@ pub fn run_pooled(
                 k.geometry.cols.pad_before = 0;
                 k.geometry.cols.pad_after = 0;
             }
-            let mut conv = vec![0.0f32; n * (r1 - r0) * ow];
+            let mut conv = fresh_buffer(n * (r1 - r0) * ow);
+            conv.resize(n * (r1 - r0) * ow, 0.0);
             strategy(choice.engine).run(&band, &band_in, &mut conv);
+            give_back(band_in);
             if let Some(a) = act {
                 a.apply(&mut conv);
             }
             let conv = Array3::from_shape_vec((n, r1 - r0, ow), conv)
                 .map_err(|e| Error::Stage(format!("band shape: {e}")))?;
-            Ok(pool.apply(&conv)?.into_raw_vec_and_offset().0)
+            let pooled = pool.apply(&conv)?.into_raw_vec_and_offset().0;
+            recycle(conv);
+            Ok(pooled)
         })
         .collect();
     let mut out = vec![0.0f32; n * qh * qw];

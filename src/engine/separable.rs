@@ -52,10 +52,7 @@ impl Strategy for Separable {
                         }
                         let start = j * gc.dilation;
                         if gc.stride == 1 {
-                            // Contiguous: the compiler vectorises this loop.
-                            for (o, s) in row.iter_mut().zip(&line[start..start + ow]) {
-                                *o += t * s;
-                            }
+                            crate::engine::simd::axpy(row, t, &line[start..start + ow]);
                         } else {
                             for (o, s) in
                                 row.iter_mut().zip(line[start..].iter().step_by(gc.stride))
@@ -72,9 +69,7 @@ impl Strategy for Separable {
                             continue;
                         }
                         let r = y * gr.stride + i * gr.dilation;
-                        for (o, s) in row.iter_mut().zip(&tmp[r * ow..(r + 1) * ow]) {
-                            *o += t * s;
-                        }
+                        crate::engine::simd::axpy(row, t, &tmp[r * ow..(r + 1) * ow]);
                     }
                 });
             }
@@ -83,5 +78,8 @@ impl Strategy for Separable {
                 dst.par_iter_mut().for_each(|o| *o = *o * scale + bias);
             }
         }
+        // The scratch goes back for the next run on this thread.
+        crate::engine::give_back(padded);
+        crate::engine::give_back(tmp);
     }
 }

@@ -194,7 +194,7 @@ impl Recipe {
             }
             let ctx =
                 |e: Error| Error::Stage(format!("stage {} ({}): {e}", i + 1, stage_kind(stage)));
-            x = match stage {
+            let y = match stage {
                 Stage::Conv(conv) => {
                     let (c, h, w) = x.dim();
                     let p = conv.prepare(c, h, w).map_err(ctx)?;
@@ -239,10 +239,12 @@ impl Recipe {
                             t[0]
                         });
                     }
-                    x
+                    continue;
                 }
                 Stage::Pool(p) => p.apply(&x).map_err(ctx)?,
             };
+            // The stage's input is done with: its memory serves later buffers.
+            crate::engine::recycle(std::mem::replace(&mut x, y));
         }
         Ok(x)
     }
