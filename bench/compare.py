@@ -141,20 +141,37 @@ def w7(d, rng):
     subprocess.run([tapmap, "apply", "-q", "--bank", "identity", "--save", "views", "--view-depth", "16",
                     "--view-range", "0,1", "--out", made, os.path.join(arr_dir, "*.npy")], check=True)
     pngs = os.path.join(made, "views")
-    def run(args):
+    def run(args, inputs=pngs):
+        # Time and peak resident memory of one tapmap process (its own rusage).
         out = os.path.join(d, "w7-out")
         t = time.perf_counter()
-        subprocess.run([tapmap, "apply", "-q", "--save", "maps,stats", "--out", out, *args, pngs], check=True)
+        p = subprocess.Popen([tapmap, "apply", "-q", "--save", "maps,stats", "--out", out, *args, inputs])
+        _, status, usage = os.wait4(p.pid, 0)
         dt = time.perf_counter() - t
+        if status != 0:
+            raise SystemExit("tapmap failed in W7")
         subprocess.run(["rm", "-rf", out], check=True)
-        return dt
-    work, floor = [], []
+        return dt, usage.ru_maxrss / 1024.0
+    recipe = ["--bank", "sobel-x+sobel-y", "--act", "relu", "--pool", "max", "--pool-size", "2"]
+    work, floor, rss = [], [], []
     for _ in range(RUNS):
-        work.append(run(["--bank", "sobel-x+sobel-y", "--act", "relu", "--pool", "max", "--pool-size", "2"]))
-        floor.append(run(["--bank", "identity"]))
+        t, m = run(recipe)
+        work.append(t)
+        rss.append(m)
+        floor.append(run(["--bank", "identity"])[0])
     mw, mf = statistics.median(work), statistics.median(floor)
     print("W7   %d × 2048² 16-bit PNG: sobel x/y+relu+pool %.2f s, I/O floor (identity) %.2f s: %.2f× the floor, %.1f images/s"
           % (n, mw, mf, mw / mf, n / mw))
+    # Peak memory must not grow with the number of images: the same run over a
+    # quarter of them.
+    quarter = os.path.join(d, "w7-quarter")
+    os.makedirs(quarter)
+    for f in sorted(os.listdir(pngs))[: max(1, n // 4)]:
+        os.symlink(os.path.join(pngs, f), os.path.join(quarter, f))
+    small = [run(recipe, quarter)[1] for _ in range(3)]
+    print("W7   peak memory: %.0f MiB for %d images, %.0f MiB for %d (median of runs): ratio %.2f"
+          % (statistics.median(rss), n, statistics.median(small), max(1, n // 4),
+             statistics.median(rss) / statistics.median(small)))
 
 
 if __name__ == "__main__":

@@ -141,10 +141,25 @@ pub fn pad_plane_into(
     (left, right): (usize, usize),
     out: &mut [f32],
 ) {
+    pad_rows_into(plane, (h, w), mode, top, (left, right), 0..h + top + bottom, out);
+}
+
+/// Rows `rows` of the padded plane (numbered as in [`pad_plane_into`], `top`
+/// rows of padding first) into `out`, one padded row after another: what a
+/// band of output rows needs, without padding the whole plane.
+pub fn pad_rows_into(
+    plane: &[f32],
+    (h, w): (usize, usize),
+    mode: PadMode,
+    top: usize,
+    (left, right): (usize, usize),
+    rows: std::ops::Range<usize>,
+    out: &mut [f32],
+) {
     let pw = w + left + right;
-    assert_eq!(out.len(), (h + top + bottom) * pw, "padded plane size");
+    assert_eq!(out.len(), rows.len() * pw, "padded rows size");
     let cols = index_map(mode, w, left, right);
-    for (j, dst) in out.chunks_exact_mut(pw).enumerate() {
+    for (j, dst) in rows.zip(out.chunks_exact_mut(pw)) {
         let Some(r) = mode.source(j as isize - top as isize, h) else {
             dst.fill(0.0);
             continue;
