@@ -141,7 +141,15 @@ pub fn pad_plane_into(
     (left, right): (usize, usize),
     out: &mut [f32],
 ) {
-    pad_rows_into(plane, (h, w), mode, top, (left, right), 0..h + top + bottom, out);
+    pad_rows_into(
+        plane,
+        (h, w),
+        mode,
+        top,
+        (left, right),
+        0..h + top + bottom,
+        out,
+    );
 }
 
 /// Rows `rows` of the padded plane (numbered as in [`pad_plane_into`], `top`

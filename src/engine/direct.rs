@@ -16,7 +16,9 @@
 
 use rayon::prelude::*;
 
-use crate::engine::{OutPtr, PreparedKernel, PreparedStage, Strategy};
+use crate::engine::{
+    bands, out_row, pad_band, pad_groups, OutPtr, PreparedKernel, PreparedStage, Strategy,
+};
 
 /// Padded rows, whole-row multiply-adds per tap.
 pub struct Direct;
@@ -35,76 +37,40 @@ impl Strategy for Direct {
 
     fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
         let (oh, ow) = (st.out_height, st.out_width);
-        let plane_out = oh * ow;
-        assert!(out.len() >= st.kernels.len() * plane_out);
+        assert!(out.len() >= st.kernels.len() * oh * ow);
         let dst = OutPtr(out.as_mut_ptr());
         // Kernels with the same padding share one padded copy of the input, and
         // each band of output rows is computed for all of them in turn, while
         // the input rows it reads are still in cache.
-        let mut done = vec![false; st.kernels.len()];
-        for n0 in 0..st.kernels.len() {
-            if done[n0] {
-                continue;
-            }
-            let g = st.kernels[n0].geometry;
-            let pads = |k: &PreparedKernel| {
-                let (r, c) = (k.geometry.rows, k.geometry.cols);
-                (r.pad_before, r.pad_after, c.pad_before, c.pad_after)
-            };
-            let group: Vec<usize> = (n0..st.kernels.len())
-                .filter(|&n| !done[n] && pads(&st.kernels[n]) == pads(&st.kernels[n0]))
-                .collect();
-            // The tallest dilated kernel of the group sets the rows a band reads.
-            let ekh = group
-                .iter()
-                .map(|&n| st.kernels[n].geometry.rows.effective_kernel())
-                .max()
-                .unwrap_or(1);
-            let (sy, pw) = (g.rows.stride, g.cols.padded());
+        for group in pad_groups(st) {
+            let pw = st.kernels[group[0]].geometry.cols.padded();
             let taps: usize = group.iter().map(|&n| st.kernels[n].taps.len()).sum();
-            let band = band_rows(ow, taps);
             let group = &group;
-            (0..oh.div_ceil(band)).into_par_iter().for_each_init(
-                || crate::engine::fresh_buffer(0),
-                |rows, b| {
-                    // Only the padded rows this band reads, into a small buffer
-                    // (no padded copy of the whole image).
-                    let (o0, o1) = (b * band, ((b + 1) * band).min(oh));
-                    let (p0, p1) = (o0 * sy, (o1 - 1) * sy + ekh);
-                    let bh = p1 - p0;
-                    rows.clear();
-                    rows.resize(st.channels * bh * pw, 0.0);
-                    for (c, dst) in rows.chunks_exact_mut(bh * pw).enumerate() {
-                        crate::border::pad_rows_into(
-                            &input[c * st.height * st.width..(c + 1) * st.height * st.width],
-                            (st.height, st.width),
-                            st.pad,
-                            g.rows.pad_before,
-                            (g.cols.pad_before, g.cols.pad_after),
-                            p0..p1,
-                            dst,
-                        );
-                    }
-                    for &n in group {
-                        let k = &st.kernels[n];
-                        for oy in o0..o1 {
-                            // SAFETY: band b alone writes rows [o0, o1) of every
-                            // kernel's plane; the row lies inside `out` (checked
-                            // length above).
-                            let row = unsafe {
-                                std::slice::from_raw_parts_mut(
-                                    dst.at(n * plane_out + oy * ow),
-                                    ow,
-                                )
-                            };
-                            conv_row(k, st.channels, rows, (bh, pw), oy - o0, row);
+            bands(st, group, band_rows(ow, taps))
+                .into_par_iter()
+                .for_each_init(
+                    || crate::engine::fresh_buffer(0),
+                    |rows, band| {
+                        // Only the padded rows this band reads, into a small
+                        // buffer (no padded copy of the whole image).
+                        pad_band(st, group[0], input, band, rows);
+                        for &n in group {
+                            for oy in band.o0..band.o1 {
+                                // SAFETY: this band alone writes rows [o0, o1) of
+                                // every kernel's plane (checked length above).
+                                let row = unsafe { out_row(dst, st, n, oy) };
+                                conv_row(
+                                    &st.kernels[n],
+                                    st.channels,
+                                    rows,
+                                    (band.rows, pw),
+                                    oy - band.o0,
+                                    row,
+                                );
+                            }
                         }
-                    }
-                },
-            );
-            for &n in group {
-                done[n] = true;
-            }
+                    },
+                );
         }
     }
 }

@@ -145,6 +145,107 @@ pub(crate) fn pad_input(st: &PreparedStage, g: &Geometry, input: &[f32], out: &m
     }
 }
 
+/// The stage's kernels grouped by padding (in order): kernels of one group read
+/// the same padded rows, so a band of rows is padded once for all of them.
+pub(crate) fn pad_groups(st: &PreparedStage) -> Vec<Vec<usize>> {
+    let pads = |k: &PreparedKernel| {
+        let (r, c) = (k.geometry.rows, k.geometry.cols);
+        (r.pad_before, r.pad_after, c.pad_before, c.pad_after)
+    };
+    let mut groups: Vec<Vec<usize>> = Vec::new();
+    for (n, k) in st.kernels.iter().enumerate() {
+        match groups
+            .iter_mut()
+            .find(|g| pads(&st.kernels[g[0]]) == pads(k))
+        {
+            Some(g) => g.push(n),
+            None => groups.push(vec![n]),
+        }
+    }
+    groups
+}
+
+/// One band of output rows [o0, o1) of a pad group: the padded input rows it
+/// reads, [p0, p0 + rows).
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Band {
+    /// First output row.
+    pub o0: usize,
+    /// One past the last output row.
+    pub o1: usize,
+    /// First padded input row read.
+    pub p0: usize,
+    /// Padded input rows read.
+    pub rows: usize,
+}
+
+/// Bands of `per_band` output rows for the kernels of `group`, with the padded
+/// rows each reads (the tallest dilated kernel of the group decides).
+pub(crate) fn bands(st: &PreparedStage, group: &[usize], per_band: usize) -> Vec<Band> {
+    let g = st.kernels[group[0]].geometry;
+    let ekh = group
+        .iter()
+        .map(|&n| st.kernels[n].geometry.rows.effective_kernel())
+        .max()
+        .unwrap_or(1);
+    let sy = g.rows.stride;
+    (0..st.out_height)
+        .step_by(per_band.max(1))
+        .map(|o0| {
+            let o1 = (o0 + per_band.max(1)).min(st.out_height);
+            let p0 = o0 * sy;
+            Band {
+                o0,
+                o1,
+                p0,
+                rows: (o1 - 1) * sy + ekh - p0,
+            }
+        })
+        .collect()
+}
+
+/// Pads just the rows of `band` of every input channel, for the padding of
+/// kernel `n`, into `rows` (`channels × band.rows × padded width`).
+pub(crate) fn pad_band(
+    st: &PreparedStage,
+    n: usize,
+    input: &[f32],
+    band: Band,
+    rows: &mut Vec<f32>,
+) {
+    let g = st.kernels[n].geometry;
+    let pw = g.cols.padded();
+    let plane = st.height * st.width;
+    rows.clear();
+    rows.resize(st.channels * band.rows * pw, 0.0);
+    for (c, dst) in rows.chunks_exact_mut(band.rows * pw).enumerate() {
+        crate::border::pad_rows_into(
+            &input[c * plane..(c + 1) * plane],
+            (st.height, st.width),
+            st.pad,
+            g.rows.pad_before,
+            (g.cols.pad_before, g.cols.pad_after),
+            band.p0..band.p0 + band.rows,
+            dst,
+        );
+    }
+}
+
+/// Row `oy` of kernel `n`'s output plane, written through `dst`.
+///
+/// # Safety
+/// `dst` must point at an output of `kernels × out_height × out_width` samples,
+/// and no other task may touch this row meanwhile.
+pub(crate) unsafe fn out_row<'a>(
+    dst: OutPtr,
+    st: &PreparedStage,
+    n: usize,
+    oy: usize,
+) -> &'a mut [f32] {
+    let ow = st.out_width;
+    unsafe { std::slice::from_raw_parts_mut(dst.at((n * st.out_height + oy) * ow), ow) }
+}
+
 /// A conv stage checked against an input shape.
 #[derive(Debug, Clone)]
 pub struct PreparedStage {
