@@ -73,10 +73,46 @@ fn separable_threshold(c: &mut Criterion) {
     g.finish();
 }
 
+/// A stage of `n` kernels of `ch` planes of k×k taps given by `tap(kernel,
+/// plane, index)`, zero padding, same extent.
+fn bank_stage(
+    n: usize,
+    ch: usize,
+    k: usize,
+    tap: impl Fn(usize, usize, usize) -> f64,
+) -> ConvStage {
+    use tapmap::kernel::{Bank, Kernel, Op};
+    let kernels = (0..n)
+        .map(|i| Kernel {
+            name: format!("k{i}"),
+            rows: k,
+            cols: k,
+            planes: (0..ch)
+                .map(|c| (0..k * k).map(|t| tap(i, c, t)).collect())
+                .collect(),
+            scale: 1.0,
+            bias: 0.0,
+            origin: None,
+        })
+        .collect();
+    ConvStage {
+        bank: Bank {
+            name: "b".into(),
+            op: Op::Correlate,
+            description: None,
+            kernels,
+            normalize: None,
+        },
+        options: ConvOptions {
+            pad: PadMode::Zero,
+            ..ConvOptions::default()
+        },
+    }
+}
+
 /// Where the matrix product overtakes the direct strategy, by bank size
 /// (sets `engine::MATMUL_FROM`): random banks of N kernels × C channels × k×k.
 fn matmul_threshold(c: &mut Criterion) {
-    use tapmap::kernel::{Bank, Kernel, Op};
     let mut g = c.benchmark_group("matmul_threshold");
     g.sample_size(10);
     for (n, ch, k, size) in [
@@ -88,36 +124,9 @@ fn matmul_threshold(c: &mut Criterion) {
         (16, 3, 7, 512),
         (64, 3, 7, 512),
     ] {
-        let kernels = (0..n)
-            .map(|i| Kernel {
-                name: format!("k{i}"),
-                rows: k,
-                cols: k,
-                planes: (0..ch)
-                    .map(|c| {
-                        (0..k * k)
-                            .map(|t| (((i * 31 + c * 7 + t * 13) % 17) as f64 - 8.0) / 8.0)
-                            .collect()
-                    })
-                    .collect(),
-                scale: 1.0,
-                bias: 0.0,
-                origin: None,
-            })
-            .collect();
-        let st = ConvStage {
-            bank: Bank {
-                name: "b".into(),
-                op: Op::Correlate,
-                description: None,
-                kernels,
-                normalize: None,
-            },
-            options: ConvOptions {
-                pad: PadMode::Zero,
-                ..ConvOptions::default()
-            },
-        };
+        let st = bank_stage(n, ch, k, |i, c, t| {
+            (((i * 31 + c * 7 + t * 13) % 17) as f64 - 8.0) / 8.0
+        });
         let img = Array3::from_shape_fn((ch, size, size), |(c, y, x)| {
             ((x * 31 + y * 17 + c * 5) % 251) as f32 / 251.0
         });
@@ -136,7 +145,6 @@ fn matmul_threshold(c: &mut Criterion) {
 /// rank 1 (sets `engine::FFT_FROM`): one random k×k kernel, and a bank of 8, on
 /// 1024², same extent, zero padding.
 fn fft_threshold(c: &mut Criterion) {
-    use tapmap::kernel::{Bank, Kernel, Op};
     let mut g = c.benchmark_group("fft_threshold");
     g.sample_size(10);
     for (n, k) in [
@@ -150,29 +158,9 @@ fn fft_threshold(c: &mut Criterion) {
         (8, 11),
         (8, 15),
     ] {
-        let kernels = (0..n)
-            .map(|i| Kernel {
-                name: format!("k{i}"),
-                rows: k,
-                cols: k,
-                planes: vec![(0..k * k)
-                    .map(|t| (((i * 31 + t * 13 + t * t) % 17) as f64 - 8.0) / 8.0)
-                    .collect()],
-                scale: 1.0,
-                bias: 0.0,
-                origin: None,
-            })
-            .collect();
-        let st = ConvStage {
-            bank: Bank {
-                name: "b".into(),
-                op: Op::Correlate,
-                description: None,
-                kernels,
-                normalize: None,
-            },
-            options: ConvOptions::default(),
-        };
+        let st = bank_stage(n, 1, k, |i, _, t| {
+            (((i * 31 + t * 13 + t * t) % 17) as f64 - 8.0) / 8.0
+        });
         let img = Array3::from_shape_fn((1, 1024, 1024), |(_, y, x)| {
             ((x * 31 + y * 17) % 251) as f32 / 251.0
         });
