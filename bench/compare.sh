@@ -6,6 +6,10 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 cargo build --release --example bench_workload --bin tapmap
+# W7 reads peak memory with GNU time.
+if [ ! -x /usr/bin/time ]; then
+  apt-get install -y --no-install-recommends time || echo "GNU time missing: W7's peak memory cannot be read"
+fi
 python3 -m venv target/bench-venv
 target/bench-venv/bin/pip install --quiet --disable-pip-version-check numpy scipy
 if [ "${1:-}" = "--torch" ]; then

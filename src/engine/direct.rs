@@ -48,29 +48,26 @@ impl Strategy for Direct {
             let group = &group;
             bands(st, group, band_rows(ow, taps))
                 .into_par_iter()
-                .for_each_init(
-                    || crate::engine::fresh_buffer(0),
-                    |rows, band| {
-                        // Only the padded rows this band reads, into a small
-                        // buffer (no padded copy of the whole image).
-                        pad_band(st, group[0], input, band, rows);
-                        for &n in group {
-                            for oy in band.o0..band.o1 {
-                                // SAFETY: this band alone writes rows [o0, o1) of
-                                // every kernel's plane (checked length above).
-                                let row = unsafe { out_row(dst, st, n, oy) };
-                                conv_row(
-                                    &st.kernels[n],
-                                    st.channels,
-                                    rows,
-                                    (band.rows, pw),
-                                    oy - band.o0,
-                                    row,
-                                );
-                            }
+                .for_each_init(Vec::new, |rows, band| {
+                    // Only the padded rows this band reads, into a small
+                    // buffer (no padded copy of the whole image).
+                    pad_band(st, group[0], input, band, rows);
+                    for &n in group {
+                        for oy in band.o0..band.o1 {
+                            // SAFETY: this band alone writes rows [o0, o1) of
+                            // every kernel's plane (checked length above).
+                            let row = unsafe { out_row(dst, st, n, oy) };
+                            conv_row(
+                                &st.kernels[n],
+                                st.channels,
+                                rows,
+                                (band.rows, pw),
+                                oy - band.o0,
+                                row,
+                            );
                         }
-                    },
-                );
+                    }
+                });
         }
     }
 }

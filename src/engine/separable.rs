@@ -42,12 +42,7 @@ impl Strategy for Separable {
             bands(st, group, band_rows(ow))
                 .into_par_iter()
                 .for_each_init(
-                    || {
-                        (
-                            crate::engine::fresh_buffer(0),
-                            crate::engine::fresh_buffer(0),
-                        )
-                    },
+                    || (Vec::new(), Vec::new()),
                     |(rows, tmp), band| {
                         pad_band(st, group[0], input, band, rows);
                         for &n in group {
