@@ -73,8 +73,42 @@ impl Strategy for Direct {
 }
 
 /// Computes output row `oy` of one kernel from the padded channels `src`
-/// (`channels × ph × pw`).
+/// (`channels × ph × pw`), with the widest vectors this CPU has (see `simd`;
+/// both copies do the same operations, so the bits agree).
 fn conv_row(
+    k: &PreparedKernel,
+    channels: usize,
+    src: &[f32],
+    dims: (usize, usize),
+    oy: usize,
+    row: &mut [f32],
+) {
+    #[cfg(target_arch = "x86_64")]
+    if crate::engine::simd::avx2() {
+        // SAFETY: the CPU has AVX2 (checked at run time just above).
+        return unsafe { conv_row_avx2(k, channels, src, dims, oy, row) };
+    }
+    conv_row_body(k, channels, src, dims, oy, row)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn conv_row_avx2(
+    k: &PreparedKernel,
+    channels: usize,
+    src: &[f32],
+    dims: (usize, usize),
+    oy: usize,
+    row: &mut [f32],
+) {
+    conv_row_body(k, channels, src, dims, oy, row)
+}
+
+/// Output samples summed together in registers before they are stored.
+const CHUNK: usize = 64;
+
+#[inline(always)]
+fn conv_row_body(
     k: &PreparedKernel,
     channels: usize,
     src: &[f32],
@@ -85,26 +119,48 @@ fn conv_row(
     let (gr, gc) = (k.geometry.rows, k.geometry.cols);
     let ow = row.len();
     let (sx, dx) = (gc.stride, gc.dilation);
-    row.fill(0.0);
-    for c in 0..channels {
-        let chan = &src[c * ph * pw..(c + 1) * ph * pw];
-        for u in 0..k.rows {
-            let y = oy * gr.stride + u * gr.dilation;
-            let line = &chan[y * pw..(y + 1) * pw];
-            let taps = &k.taps[(c * k.rows + u) * k.cols..(c * k.rows + u + 1) * k.cols];
-            for (v, &t) in taps.iter().enumerate() {
-                if t == 0.0 {
-                    continue;
+    // Where tap (c, u, v) reads its row segment: every nonzero tap in the order
+    // c, u, v, the order every output sample is summed in.
+    let taps = (0..channels).flat_map(|c| {
+        (0..k.rows).flat_map(move |u| {
+            let base = c * ph * pw + (oy * gr.stride + u * gr.dilation) * pw;
+            (0..k.cols).filter_map(move |v| {
+                let t = k.taps[(c * k.rows + u) * k.cols + v];
+                (t != 0.0).then_some((base + v * dx, t))
+            })
+        })
+    });
+    if sx == 1 {
+        // Chunks of the row summed over all taps in registers, then stored once.
+        let mut x0 = 0;
+        while x0 + CHUNK <= ow {
+            let mut acc = [0.0f32; CHUNK];
+            for (off, t) in taps.clone() {
+                let seg = &src[off + x0..off + x0 + CHUNK];
+                for (a, s) in acc.iter_mut().zip(seg) {
+                    *a += t * s;
                 }
-                let start = v * dx;
-                if sx == 1 {
-                    crate::engine::simd::axpy(row, t, &line[start..start + ow]);
-                } else {
-                    let seg = &line[start..start + (ow - 1) * sx + 1];
-                    for (o, s) in row.iter_mut().zip(seg.iter().step_by(sx)) {
-                        *o += t * s;
-                    }
+            }
+            row[x0..x0 + CHUNK].copy_from_slice(&acc);
+            x0 += CHUNK;
+        }
+        if x0 < ow {
+            let n = ow - x0;
+            let mut acc = [0.0f32; CHUNK];
+            for (off, t) in taps {
+                let seg = &src[off + x0..off + x0 + n];
+                for (a, s) in acc[..n].iter_mut().zip(seg) {
+                    *a += t * s;
                 }
+            }
+            row[x0..].copy_from_slice(&acc[..n]);
+        }
+    } else {
+        row.fill(0.0);
+        for (off, t) in taps {
+            let seg = &src[off..off + (ow - 1) * sx + 1];
+            for (o, s) in row.iter_mut().zip(seg.iter().step_by(sx)) {
+                *o += t * s;
             }
         }
     }

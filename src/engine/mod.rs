@@ -130,8 +130,9 @@ pub(crate) fn pad_input(st: &PreparedStage, g: &Geometry, input: &[f32], out: &m
     if out.capacity() < total {
         *out = fresh_buffer(total);
     }
-    // Every sample is overwritten below; the zero fill only makes the memory valid.
-    out.clear();
+    // Every sample is overwritten below; reused memory keeps its old values
+    // meanwhile, and only growth is zero-filled to make the memory valid.
+    out.truncate(total);
     out.resize(total, 0.0);
     for (c, dst) in out.chunks_exact_mut(plane).enumerate() {
         crate::border::pad_plane_into(
@@ -626,13 +627,24 @@ pub(crate) fn strategy(engine: Engine) -> &'static dyn Strategy {
     }
 }
 
-/// An empty buffer with room for `len` samples: one this thread gave back with
+/// A buffer of exactly `len` samples for a caller that overwrites every one of
+/// them: reused memory keeps its old values (no pass to zero it), and only
+/// growth is zero-filled.
+pub(crate) fn scratch(len: usize) -> Vec<f32> {
+    let mut v = fresh_buffer(len);
+    v.truncate(len);
+    v.resize(len, 0.0);
+    v
+}
+
+/// A buffer with room for `len` samples (its length is whatever it held; clear
+/// or truncate it): one this thread gave back with
 /// [`give_back`] when one is large enough, else a new one backed by huge pages
 /// where the system allows (see [`advise_huge_range`]). Memory already written
 /// once is several times faster to write than fresh memory, so a batch reuses
 /// the same few buffers image after image instead of allocating per image.
 pub(crate) fn fresh_buffer(len: usize) -> Vec<f32> {
-    if let Some(mut v) = SPARE.with(|s| {
+    if let Some(v) = SPARE.with(|s| {
         let mut s = s.borrow_mut();
         // The smallest spare that fits, so large ones stay for large requests.
         let best = s
@@ -643,7 +655,6 @@ pub(crate) fn fresh_buffer(len: usize) -> Vec<f32> {
             .map(|(i, _)| i);
         best.map(|i| s.swap_remove(i))
     }) {
-        v.clear();
         return v;
     }
     let mut v = Vec::with_capacity(len);
@@ -738,8 +749,8 @@ pub fn run_prepared(
         )));
     }
     let len = prepared.output_len()?;
-    let mut out = fresh_buffer(len);
-    out.resize(len, 0.0);
+    // Every strategy writes every output sample.
+    let mut out = scratch(len);
     let choice = choose(prepared, engine);
     let contiguous;
     let data = match input.as_slice() {
@@ -822,6 +833,7 @@ pub fn run_pooled(
             let (p0, p1) = (r0 * sy, (r1 - 1) * sy + ekh);
             let bh = p1 - p0;
             let mut band_in = fresh_buffer(c * bh * pw);
+            band_in.clear();
             for ch in 0..c {
                 band_in.extend_from_slice(&padded[(ch * ph + p0) * pw..(ch * ph + p1) * pw]);
             }
@@ -838,8 +850,7 @@ pub fn run_pooled(
                 k.geometry.cols.pad_before = 0;
                 k.geometry.cols.pad_after = 0;
             }
-            let mut conv = fresh_buffer(n * (r1 - r0) * ow);
-            conv.resize(n * (r1 - r0) * ow, 0.0);
+            let mut conv = scratch(n * (r1 - r0) * ow);
             strategy(choice.engine).run(&band, &band_in, &mut conv);
             give_back(band_in);
             if let Some(a) = act {

@@ -106,8 +106,8 @@ impl Pool {
         let ((kh, kw), (sh, sw)) = self.window_over(h, w);
         let standard = input.as_standard_layout();
         let data = standard.as_slice().expect("standard layout");
-        let mut out = crate::engine::fresh_buffer(c * oh * ow);
-        out.resize(c * oh * ow, 0.0);
+        // Every output is written below.
+        let mut out = crate::engine::scratch(c * oh * ow);
         let kind = self.kind;
         out.par_chunks_mut(oh * ow)
             .enumerate()
