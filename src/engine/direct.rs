@@ -27,7 +27,9 @@ pub struct Direct;
 /// enough that the input rows a band reads stay in cache across its kernels.
 fn band_rows(out_width: usize, taps: usize) -> usize {
     let per_row = (out_width * taps).max(1);
-    (65_536 / per_row).clamp(1, 32)
+    // At least 8 rows, so that the rows above and below a band that it pads
+    // for its taps are a small share of what it pads.
+    (65_536 / per_row).clamp(8, 32)
 }
 
 impl Strategy for Direct {

@@ -775,8 +775,8 @@ pub fn run_prepared(
 }
 
 /// Runs a prepared conv stage, then `act`, then a sized `pool`, in bands of
-/// pooled rows, so that the conv map is never held whole: the input is padded
-/// once, and each band computes just the conv rows its pool windows cover (rows
+/// pooled rows, so that the conv map is never held whole: each band pads just
+/// the input rows it reads and computes just the conv rows its pool windows cover (rows
 /// shared by two bands' windows are computed by both). Every output sample is
 /// computed exactly as the unfused path computes it, so the result is
 /// bit-identical to `run_prepared`, then the activation, then the pool.
@@ -813,9 +813,7 @@ pub fn run_pooled(
     let ((kh, _), (sh, _)) = pool.window_over(oh, ow);
     let contiguous = input.as_standard_layout();
     let data = contiguous.as_slice().expect("standard layout");
-    let mut padded = Vec::new();
-    pad_input(prepared, &g, data, &mut padded);
-    let (ph, pw) = (g.rows.padded(), g.cols.padded());
+    let pw = g.cols.padded();
     let ekh = g.rows.effective_kernel();
     let sy = g.rows.stride;
     let n = prepared.kernels.len();
@@ -825,18 +823,25 @@ pub fn run_pooled(
         .step_by(per_band)
         .map(|q0| (q0, (q0 + per_band).min(qh)))
         .collect();
-    let results: Vec<Result<Vec<f32>, Error>> = bands
+    // Every pooled sample is written by exactly one band.
+    let mut out = scratch(n * qh * qw);
+    let dst = OutPtr(out.as_mut_ptr());
+    bands
         .par_iter()
-        .map(|&(q0, q1)| {
+        .try_for_each(|&(q0, q1)| -> Result<(), Error> {
             // Conv rows [r0, r1) feed pooled rows [q0, q1); padded rows [p0, p1) feed them.
             let (r0, r1) = (q0 * sh, (q1 - 1) * sh + kh);
             let (p0, p1) = (r0 * sy, (r1 - 1) * sy + ekh);
             let bh = p1 - p0;
+            // Just the padded rows this band reads (no padded copy of the image).
             let mut band_in = fresh_buffer(c * bh * pw);
-            band_in.clear();
-            for ch in 0..c {
-                band_in.extend_from_slice(&padded[(ch * ph + p0) * pw..(ch * ph + p1) * pw]);
-            }
+            let rows = Band {
+                o0: r0,
+                o1: r1,
+                p0,
+                rows: bh,
+            };
+            pad_band(prepared, 0, data, rows, &mut band_in);
             let mut band = prepared.clone();
             band.height = bh;
             band.width = pw;
@@ -858,20 +863,22 @@ pub fn run_pooled(
             }
             let conv = Array3::from_shape_vec((n, r1 - r0, ow), conv)
                 .map_err(|e| Error::Stage(format!("band shape: {e}")))?;
-            let pooled = pool.apply(&conv)?.into_raw_vec_and_offset().0;
+            // Bands already run in parallel: the band's maps are pooled in turn.
+            let pooled = pool.apply_with(&conv, false)?;
             recycle(conv);
-            Ok(pooled)
-        })
-        .collect();
-    let mut out = vec![0.0f32; n * qh * qw];
-    for (&(q0, q1), r) in bands.iter().zip(results) {
-        let part = r?;
-        let rows = q1 - q0;
-        for k in 0..n {
-            out[(k * qh + q0) * qw..(k * qh + q1) * qw]
-                .copy_from_slice(&part[k * rows * qw..(k + 1) * rows * qw]);
-        }
-    }
+            let part = pooled.as_slice().expect("a new array is contiguous");
+            let rows = q1 - q0;
+            for k in 0..n {
+                // SAFETY: this band alone writes pooled rows [q0, q1) of every
+                // map, which lie inside `out` (q1 ≤ qh).
+                let to = unsafe {
+                    std::slice::from_raw_parts_mut(dst.at((k * qh + q0) * qw), rows * qw)
+                };
+                to.copy_from_slice(&part[k * rows * qw..(k + 1) * rows * qw]);
+            }
+            recycle(pooled);
+            Ok(())
+        })?;
     Array3::from_shape_vec((n, qh, qw), out)
         .map(Some)
         .map_err(|e| Error::Stage(format!("output shape: {e}")))

@@ -100,6 +100,12 @@ impl Pool {
     /// whole input rows (running max or f64 sum per output column), maps in
     /// parallel; every output is computed in the same order whatever the threads.
     pub fn apply(&self, input: &Array3<f32>) -> Result<Array3<f32>, Error> {
+        self.apply_with(input, true)
+    }
+
+    /// [`Pool::apply`], maps in parallel or (inside work that is already
+    /// parallel, such as a band of a fused stage) one after another.
+    pub fn apply_with(&self, input: &Array3<f32>, parallel: bool) -> Result<Array3<f32>, Error> {
         use rayon::prelude::*;
         let (c, h, w) = input.dim();
         let (oh, ow) = self.output_size(h, w)?;
@@ -109,48 +115,99 @@ impl Pool {
         // Every output is written below.
         let mut out = crate::engine::scratch(c * oh * ow);
         let kind = self.kind;
-        out.par_chunks_mut(oh * ow)
-            .enumerate()
-            .for_each(|(ch, dst)| {
-                let map = &data[ch * h * w..(ch + 1) * h * w];
-                let mut acc = vec![0.0f64; ow];
-                let mut best = vec![f32::NEG_INFINITY; ow];
-                for (oy, row_out) in dst.chunks_exact_mut(ow).enumerate() {
-                    acc.fill(0.0);
-                    best.fill(f32::NEG_INFINITY);
-                    for r in oy * sh..oy * sh + kh {
-                        let line = &map[r * w..(r + 1) * w];
-                        for ox in 0..ow {
-                            let win = &line[ox * sw..ox * sw + kw];
-                            match kind {
-                                PoolKind::Max => {
-                                    let m = &mut best[ox];
-                                    for &v in win {
-                                        // NaN wins and stays, so a NaN in the window gives NaN.
-                                        if v > *m || v.is_nan() && !m.is_nan() {
-                                            *m = v;
-                                        }
-                                    }
-                                }
-                                PoolKind::Mean => {
-                                    acc[ox] += win.iter().map(|&v| v as f64).sum::<f64>()
+        let one = |(ch, dst): (usize, &mut [f32])| {
+            let map = &data[ch * h * w..(ch + 1) * h * w];
+            if kind == PoolKind::Max {
+                max_rows(map, w, (kh, kw), (sh, sw), dst, ow);
+                return;
+            }
+            let mut acc = vec![0.0f64; ow];
+            let mut best = vec![f32::NEG_INFINITY; ow];
+            for (oy, row_out) in dst.chunks_exact_mut(ow).enumerate() {
+                acc.fill(0.0);
+                best.fill(f32::NEG_INFINITY);
+                for r in oy * sh..oy * sh + kh {
+                    let line = &map[r * w..(r + 1) * w];
+                    for ox in 0..ow {
+                        let win = &line[ox * sw..ox * sw + kw];
+                        match kind {
+                            PoolKind::Max => {
+                                for &v in win {
+                                    take_max(&mut best[ox], v);
                                 }
                             }
-                        }
-                    }
-                    match kind {
-                        PoolKind::Max => row_out.copy_from_slice(&best),
-                        PoolKind::Mean => {
-                            let n = (kh * kw) as f64;
-                            row_out
-                                .iter_mut()
-                                .zip(&acc)
-                                .for_each(|(o, a)| *o = (a / n) as f32);
+                            PoolKind::Mean => acc[ox] += win.iter().map(|&v| v as f64).sum::<f64>(),
                         }
                     }
                 }
-            });
+                match kind {
+                    PoolKind::Max => row_out.copy_from_slice(&best),
+                    PoolKind::Mean => {
+                        let n = (kh * kw) as f64;
+                        row_out
+                            .iter_mut()
+                            .zip(&acc)
+                            .for_each(|(o, a)| *o = (a / n) as f32);
+                    }
+                }
+            }
+        };
+        if parallel {
+            out.par_chunks_mut(oh * ow).enumerate().for_each(one);
+        } else {
+            out.chunks_mut(oh * ow).enumerate().for_each(one);
+        }
         Array3::from_shape_vec((c, oh, ow), out)
             .map_err(|e| Error::Stage(format!("pool output: {e}")))
+    }
+}
+
+/// `m` becomes `v` when `v` is larger, or when `v` is NaN and `m` is not: a NaN
+/// in a window wins and stays, so the window's result is NaN.
+#[inline(always)]
+fn take_max(m: &mut f32, v: f32) {
+    if v > *m || v.is_nan() && !m.is_nan() {
+        *m = v;
+    }
+}
+
+/// Max pooling of one map, rows first: for each output row, the element-wise
+/// max of the window's input rows (contiguous, so it runs as vectors), then the
+/// max over each window's columns of that. Max is exact, so the order does not
+/// change any finite result.
+fn max_rows(
+    map: &[f32],
+    w: usize,
+    (kh, kw): (usize, usize),
+    (sh, sw): (usize, usize),
+    dst: &mut [f32],
+    ow: usize,
+) {
+    let span = (ow - 1) * sw + kw;
+    let mut col = vec![0.0f32; span];
+    for (oy, row_out) in dst.chunks_exact_mut(ow).enumerate() {
+        let r0 = oy * sh;
+        col.copy_from_slice(&map[r0 * w..r0 * w + span]);
+        for r in r0 + 1..r0 + kh {
+            for (m, &v) in col.iter_mut().zip(&map[r * w..r * w + span]) {
+                take_max(m, v);
+            }
+        }
+        if kw == 2 && sw == 2 {
+            for (o, pair) in row_out.iter_mut().zip(col.chunks_exact(2)) {
+                let mut m = pair[0];
+                take_max(&mut m, pair[1]);
+                *o = m;
+            }
+        } else {
+            for (ox, o) in row_out.iter_mut().enumerate() {
+                let win = &col[ox * sw..ox * sw + kw];
+                let mut m = win[0];
+                for &v in &win[1..] {
+                    take_max(&mut m, v);
+                }
+                *o = m;
+            }
+        }
     }
 }
