@@ -117,39 +117,9 @@ impl Pool {
         let kind = self.kind;
         let one = |(ch, dst): (usize, &mut [f32])| {
             let map = &data[ch * h * w..(ch + 1) * h * w];
-            if kind == PoolKind::Max {
-                max_rows(map, w, (kh, kw), (sh, sw), dst, ow);
-                return;
-            }
-            let mut acc = vec![0.0f64; ow];
-            let mut best = vec![f32::NEG_INFINITY; ow];
-            for (oy, row_out) in dst.chunks_exact_mut(ow).enumerate() {
-                acc.fill(0.0);
-                best.fill(f32::NEG_INFINITY);
-                for r in oy * sh..oy * sh + kh {
-                    let line = &map[r * w..(r + 1) * w];
-                    for ox in 0..ow {
-                        let win = &line[ox * sw..ox * sw + kw];
-                        match kind {
-                            PoolKind::Max => {
-                                for &v in win {
-                                    take_max(&mut best[ox], v);
-                                }
-                            }
-                            PoolKind::Mean => acc[ox] += win.iter().map(|&v| v as f64).sum::<f64>(),
-                        }
-                    }
-                }
-                match kind {
-                    PoolKind::Max => row_out.copy_from_slice(&best),
-                    PoolKind::Mean => {
-                        let n = (kh * kw) as f64;
-                        row_out
-                            .iter_mut()
-                            .zip(&acc)
-                            .for_each(|(o, a)| *o = (a / n) as f32);
-                    }
-                }
+            match kind {
+                PoolKind::Max => max_rows(map, w, (kh, kw), (sh, sw), dst, ow),
+                PoolKind::Mean => mean_rows(map, w, (kh, kw), (sh, sw), dst, ow),
             }
         };
         if parallel {
@@ -208,6 +178,35 @@ fn max_rows(
                 }
                 *o = m;
             }
+        }
+    }
+}
+
+/// Mean pooling of one map: each window summed in f64, row by row of the
+/// window, then divided by its size.
+fn mean_rows(
+    map: &[f32],
+    w: usize,
+    (kh, kw): (usize, usize),
+    (sh, sw): (usize, usize),
+    dst: &mut [f32],
+    ow: usize,
+) {
+    let n = (kh * kw) as f64;
+    let mut acc = vec![0.0f64; ow];
+    for (oy, row_out) in dst.chunks_exact_mut(ow).enumerate() {
+        acc.fill(0.0);
+        for r in oy * sh..oy * sh + kh {
+            let line = &map[r * w..(r + 1) * w];
+            for (ox, a) in acc.iter_mut().enumerate() {
+                *a += line[ox * sw..ox * sw + kw]
+                    .iter()
+                    .map(|&v| v as f64)
+                    .sum::<f64>();
+            }
+        }
+        for (o, a) in row_out.iter_mut().zip(&acc) {
+            *o = (a / n) as f32;
         }
     }
 }
