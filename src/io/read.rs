@@ -255,6 +255,18 @@ pub fn bytes_text(n: u64) -> String {
     format!("{v:.1} {}", UNITS[u])
 }
 
+/// Checks the bytes decoding an image would take against `--max-memory`.
+fn check_decode_memory(need: u64, opts: &ReadOptions) -> Result<(), String> {
+    if need > opts.max_memory {
+        return Err(format!(
+            "needs about {} to decode, over --max-memory ({})",
+            bytes_text(need),
+            bytes_text(opts.max_memory)
+        ));
+    }
+    Ok(())
+}
+
 /// Checks an image's size against `--max-pixels` before it is decoded.
 pub fn check_pixels(w: u64, h: u64, opts: &ReadOptions) -> Result<(), String> {
     let px = w.saturating_mul(h);
@@ -366,16 +378,7 @@ fn read_image_any(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
     let need = decoder
         .total_bytes()
         .saturating_add((w as u64 * h as u64).saturating_mul(16));
-    if need > opts.max_memory {
-        return Err(bad(
-            path,
-            format!(
-                "needs about {} to decode, over --max-memory ({})",
-                bytes_text(need),
-                bytes_text(opts.max_memory)
-            ),
-        ));
-    }
+    check_decode_memory(need, opts).map_err(|m| bad(path, m))?;
     let mut info = ImageMeta::default();
     let exif_raw = decoder
         .exif_metadata()
@@ -527,15 +530,7 @@ fn read_grey_float(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error
     let (w, h, samples, tag) = crate::io::tiff::read_grey_float_tiff(path, &|w, h| {
         check_pixels(w as u64, h as u64, opts)?;
         // Samples as f64 at worst, then three f32 copies while orienting.
-        let need = (w as u64 * h as u64).saturating_mul(20);
-        if need > opts.max_memory {
-            return Err(format!(
-                "needs about {} to decode, over --max-memory ({})",
-                bytes_text(need),
-                bytes_text(opts.max_memory)
-            ));
-        }
-        Ok(())
+        check_decode_memory((w as u64 * h as u64).saturating_mul(20), opts)
     })
     .map_err(|m| bad(path, m))?;
     let mut info = ImageMeta {
