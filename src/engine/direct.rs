@@ -14,11 +14,7 @@
 //! in parallel; each output sample is summed in the same order whatever the
 //! thread count, so results do not depend on it.
 
-use rayon::prelude::*;
-
-use crate::engine::{
-    bands, out_row, pad_band, pad_groups, OutPtr, PreparedKernel, PreparedStage, Strategy,
-};
+use crate::engine::{for_each_band, out_row, OutPtr, PreparedKernel, PreparedStage, Strategy};
 
 /// Padded rows, whole-row multiply-adds per tap.
 pub struct Direct;
@@ -41,36 +37,33 @@ impl Strategy for Direct {
         let (oh, ow) = (st.out_height, st.out_width);
         assert!(out.len() >= st.kernels.len() * oh * ow);
         let dst = OutPtr(out.as_mut_ptr());
-        // Kernels with the same padding share one padded copy of the input, and
-        // each band of output rows is computed for all of them in turn, while
-        // the input rows it reads are still in cache.
-        for group in pad_groups(st) {
-            let pw = st.kernels[group[0]].geometry.cols.padded();
-            let taps: usize = group.iter().map(|&n| st.kernels[n].taps.len()).sum();
-            let group = &group;
-            bands(st, group, band_rows(ow, taps))
-                .into_par_iter()
-                .for_each_init(Vec::new, |rows, band| {
-                    // Only the padded rows this band reads, into a small
-                    // buffer (no padded copy of the whole image).
-                    pad_band(st, group[0], input, band, rows);
-                    for &n in group {
-                        for oy in band.o0..band.o1 {
-                            // SAFETY: this band alone writes rows [o0, o1) of
-                            // every kernel's plane (checked length above).
-                            let row = unsafe { out_row(dst, st, n, oy) };
-                            conv_row(
-                                &st.kernels[n],
-                                st.channels,
-                                rows,
-                                (band.rows, pw),
-                                oy - band.o0,
-                                row,
-                            );
-                        }
+        // Each band of output rows pads just the input rows it reads and is
+        // computed for every kernel of its pad group in turn, while those rows
+        // are still in cache.
+        let taps = |group: &[usize]| group.iter().map(|&n| st.kernels[n].taps.len()).sum();
+        for_each_band(
+            st,
+            input,
+            |group| band_rows(ow, taps(group)),
+            || (),
+            |_, group, band, rows, pw| {
+                for &n in group {
+                    for oy in band.o0..band.o1 {
+                        // SAFETY: this band alone writes rows [o0, o1) of every
+                        // kernel's plane (checked length above).
+                        let row = unsafe { out_row(dst, st, n, oy) };
+                        conv_row(
+                            &st.kernels[n],
+                            st.channels,
+                            rows,
+                            (band.rows, pw),
+                            oy - band.o0,
+                            row,
+                        );
                     }
-                });
-        }
+                }
+            },
+        );
     }
 }
 

@@ -232,6 +232,34 @@ pub(crate) fn pad_band(
     }
 }
 
+/// Calls `body(state, group, band, rows, padded_width)` for every band of output
+/// rows of every pad group (bands of `per_band(group)` rows, in parallel), with
+/// `rows` holding just the padded input rows the band reads (`channels ×
+/// band.rows × padded width`); `init` makes each task's own `state`. What the
+/// direct and separable strategies share.
+pub(crate) fn for_each_band<S>(
+    st: &PreparedStage,
+    input: &[f32],
+    per_band: impl Fn(&[usize]) -> usize,
+    init: impl Fn() -> S + Sync + Send,
+    body: impl Fn(&mut S, &[usize], Band, &[f32], usize) + Sync + Send,
+) {
+    use rayon::prelude::*;
+    for group in pad_groups(st) {
+        let pw = st.kernels[group[0]].geometry.cols.padded();
+        let group = &group;
+        bands(st, group, per_band(group))
+            .into_par_iter()
+            .for_each_init(
+                || (Vec::new(), init()),
+                |(rows, state), band| {
+                    pad_band(st, group[0], input, band, rows);
+                    body(state, group, band, rows, pw);
+                },
+            );
+    }
+}
+
 /// Row `oy` of kernel `n`'s output plane, written through `dst`.
 ///
 /// # Safety

@@ -14,10 +14,8 @@
 //! output is summed in a fixed order, so results do not depend on the thread
 //! count.
 
-use rayon::prelude::*;
-
 use crate::engine::simd::axpy;
-use crate::engine::{bands, out_row, pad_band, pad_groups, OutPtr, PreparedStage, Strategy};
+use crate::engine::{for_each_band, out_row, Band, OutPtr, PreparedStage, Strategy};
 
 /// Horizontal then vertical 1-D passes for rank-1 kernels.
 pub struct Separable;
@@ -36,75 +34,83 @@ impl Strategy for Separable {
         let (oh, ow) = (st.out_height, st.out_width);
         assert!(out.len() >= st.kernels.len() * oh * ow);
         let dst = OutPtr(out.as_mut_ptr());
-        for group in pad_groups(st) {
-            let pw = st.kernels[group[0]].geometry.cols.padded();
-            let group = &group;
-            bands(st, group, band_rows(ow))
-                .into_par_iter()
-                .for_each_init(
-                    || (Vec::new(), Vec::new()),
-                    |(rows, tmp), band| {
-                        pad_band(st, group[0], input, band, rows);
-                        for &n in group {
-                            let k = &st.kernels[n];
-                            let factors = k
-                                .factors
-                                .as_ref()
-                                .expect("the planner chooses separable only for rank-1 kernels");
-                            let (gr, gc) = (k.geometry.rows, k.geometry.cols);
-                            for oy in band.o0..band.o1 {
-                                // SAFETY: this band alone writes rows [o0, o1) of every
-                                // kernel's plane (checked length above).
-                                unsafe { out_row(dst, st, n, oy) }.fill(0.0);
-                            }
-                            for (c, f) in factors.iter().enumerate() {
-                                let Some((u, v)) = f else { continue };
-                                let chan = &rows[c * band.rows * pw..(c + 1) * band.rows * pw];
-                                tmp.clear();
-                                tmp.resize(band.rows * ow, 0.0f32);
-                                for (line, row) in
-                                    chan.chunks_exact(pw).zip(tmp.chunks_exact_mut(ow))
-                                {
-                                    for (j, &t) in v.iter().enumerate() {
-                                        if t == 0.0 {
-                                            continue;
-                                        }
-                                        let start = j * gc.dilation;
-                                        if gc.stride == 1 {
-                                            axpy(row, t, &line[start..start + ow]);
-                                        } else {
-                                            for (o, s) in row
-                                                .iter_mut()
-                                                .zip(line[start..].iter().step_by(gc.stride))
-                                            {
-                                                *o += t * s;
-                                            }
-                                        }
-                                    }
-                                }
-                                for oy in band.o0..band.o1 {
-                                    // SAFETY: as above.
-                                    let row = unsafe { out_row(dst, st, n, oy) };
-                                    for (i, &t) in u.iter().enumerate() {
-                                        if t == 0.0 {
-                                            continue;
-                                        }
-                                        let r = (oy - band.o0) * gr.stride + i * gr.dilation;
-                                        axpy(row, t, &tmp[r * ow..(r + 1) * ow]);
-                                    }
-                                }
-                            }
-                            let (scale, bias) = (k.scale, k.bias);
-                            if scale != 1.0 || bias != 0.0 {
-                                for oy in band.o0..band.o1 {
-                                    // SAFETY: as above.
-                                    let row = unsafe { out_row(dst, st, n, oy) };
-                                    row.iter_mut().for_each(|o| *o = *o * scale + bias);
-                                }
-                            }
-                        }
-                    },
-                );
+        for_each_band(
+            st,
+            input,
+            |_| band_rows(ow),
+            Vec::new,
+            |tmp, group, band, rows, pw| {
+                for &n in group {
+                    // SAFETY: this band alone writes rows [o0, o1) of every
+                    // kernel's plane (checked length above).
+                    unsafe { kernel_band(st, n, band, rows, pw, tmp, dst) };
+                }
+            },
+        );
+    }
+}
+
+/// Output rows [band.o0, band.o1) of kernel `n` from the band's padded rows.
+///
+/// # Safety
+/// `dst` must point at the stage's output, and no other task may write these
+/// rows meanwhile.
+unsafe fn kernel_band(
+    st: &PreparedStage,
+    n: usize,
+    band: Band,
+    rows: &[f32],
+    pw: usize,
+    tmp: &mut Vec<f32>,
+    dst: OutPtr,
+) {
+    let ow = st.out_width;
+    let k = &st.kernels[n];
+    let factors = k
+        .factors
+        .as_ref()
+        .expect("the planner chooses separable only for rank-1 kernels");
+    let (gr, gc) = (k.geometry.rows, k.geometry.cols);
+    // SAFETY: the caller's promise covers every row of the band.
+    let out = |oy: usize| unsafe { out_row(dst, st, n, oy) };
+    for oy in band.o0..band.o1 {
+        out(oy).fill(0.0);
+    }
+    for (c, f) in factors.iter().enumerate() {
+        let Some((u, v)) = f else { continue };
+        let chan = &rows[c * band.rows * pw..(c + 1) * band.rows * pw];
+        tmp.clear();
+        tmp.resize(band.rows * ow, 0.0f32);
+        for (line, row) in chan.chunks_exact(pw).zip(tmp.chunks_exact_mut(ow)) {
+            for (j, &t) in v.iter().enumerate() {
+                if t == 0.0 {
+                    continue;
+                }
+                let start = j * gc.dilation;
+                if gc.stride == 1 {
+                    axpy(row, t, &line[start..start + ow]);
+                } else {
+                    for (o, s) in row.iter_mut().zip(line[start..].iter().step_by(gc.stride)) {
+                        *o += t * s;
+                    }
+                }
+            }
+        }
+        for oy in band.o0..band.o1 {
+            let row = out(oy);
+            for (i, &t) in u.iter().enumerate() {
+                if t == 0.0 {
+                    continue;
+                }
+                let r = (oy - band.o0) * gr.stride + i * gr.dilation;
+                axpy(row, t, &tmp[r * ow..(r + 1) * ow]);
+            }
+        }
+    }
+    let (scale, bias) = (k.scale, k.bias);
+    if scale != 1.0 || bias != 0.0 {
+        for oy in band.o0..band.o1 {
+            out(oy).iter_mut().for_each(|o| *o = *o * scale + bias);
         }
     }
 }
