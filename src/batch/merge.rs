@@ -100,18 +100,15 @@ fn read_manifest(dir: &Path, shard: Shard) -> Result<serde_json::Map<String, Val
     })?;
     let v: Value = serde_json::from_str(&text)
         .map_err(|e| Error::Stage(format!("{}: not a tapmap manifest: {e}", path.display())))?;
-    let Value::Object(m) = v else {
-        return Err(Error::Stage(format!(
-            "{}: not a tapmap manifest",
-            path.display()
-        )));
+    let m = match v {
+        Value::Object(m) if m.get("tool") == Some(&json!("tapmap")) => m,
+        _ => {
+            return Err(Error::Stage(format!(
+                "{}: not a tapmap manifest",
+                path.display()
+            )))
+        }
     };
-    if m.get("tool") != Some(&json!("tapmap")) {
-        return Err(Error::Stage(format!(
-            "{}: not a tapmap manifest",
-            path.display()
-        )));
-    }
     if let Some(i) = m.get("interrupted") {
         return Err(Error::Stage(format!(
             "shard {shard} was interrupted ({i}); finish it with --resume before merging"
