@@ -15,6 +15,7 @@ use tapmap::border::PadMode;
 use tapmap::engine::{ConvOptions, ConvStage, Engine};
 use tapmap::geometry::{Extent, PadWidth};
 use tapmap::kernel::builtin::resolve_bank;
+use tapmap::pipeline::Plan;
 use tapmap::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, Stage};
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
@@ -69,15 +70,21 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let fuse = std::env::var("TAPMAP_BENCH_FUSE").map_or(true, |v| v != "0");
     let mut times = Vec::with_capacity(runs);
     let mut out = None;
+    let mut plan: Option<Plan> = None;
     for _ in 0..runs {
+        let t = Instant::now();
+        // A batch makes the plan for an input shape once, with its first image.
+        let p = match &plan {
+            Some(p) => p,
+            None if fuse => plan.insert(Plan::new(&recipe, input.dim(), Engine::Auto)?),
+            None => plan.insert(Plan::unfused(&recipe, input.dim(), Engine::Auto)?),
+        };
         // As a batch does after writing an image's maps: their memory serves
         // the next image.
         if let Some(old) = out.take() {
-            tapmap::engine::recycle(old);
+            p.give_back(old);
         }
-        let x = input.clone();
-        let t = Instant::now();
-        let y = recipe.run_with(x, Engine::Auto, fuse)?;
+        let y = p.run(input.view())?;
         times.push(t.elapsed().as_secs_f64());
         out = Some(y);
     }
@@ -92,8 +99,8 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     if let Some(y) = out {
         y.write_npy(std::fs::File::create(&a[7])?)?;
     }
-    let c = input.dim();
-    let plan = recipe.plan(c.0, c.1, c.2, Engine::Auto)?;
+    let plan = plan.expect("at least one run");
+    let plan = plan.sizes();
     let engine = plan[0]
         .engine
         .as_ref()

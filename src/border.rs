@@ -133,7 +133,7 @@ pub fn pad_1d(x: &[f64], mode: PadMode, before: usize, after: usize) -> Vec<f64>
 /// Pads one plane of `h × w` f32 samples (row-major) into `out`, which must hold
 /// exactly `(h + top + bottom) × (w + left + right)` samples. Every sample of
 /// `out` is written (rows of zero padding with zeros).
-pub fn pad_plane_into(
+pub(crate) fn pad_plane_into(
     plane: &[f32],
     (h, w): (usize, usize),
     mode: PadMode,
@@ -155,7 +155,7 @@ pub fn pad_plane_into(
 /// Rows `rows` of the padded plane (numbered as in [`pad_plane_into`], `top`
 /// rows of padding first) into `out`, one padded row after another: what a
 /// band of output rows needs, without padding the whole plane.
-pub fn pad_rows_into(
+pub(crate) fn pad_rows_into(
     plane: &[f32],
     (h, w): (usize, usize),
     mode: PadMode,

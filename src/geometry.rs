@@ -169,6 +169,16 @@ impl AxisGeometry {
     }
 }
 
+/// The geometry of one kernel over one input size: padding and outputs along
+/// each axis.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct KernelGeometry {
+    /// Along the rows (height).
+    pub rows: AxisGeometry,
+    /// Along the columns (width).
+    pub cols: AxisGeometry,
+}
+
 /// Computes one axis of a stage's geometry; see the module header for the rule.
 /// Errors state the sizes involved.
 pub fn axis_geometry(
@@ -180,25 +190,25 @@ pub fn axis_geometry(
     extent: Extent,
 ) -> Result<AxisGeometry, Error> {
     if stride == 0 {
-        return Err(Error::Geometry(format!(
+        return Err(Error::Shape(format!(
             "stride along the {axis} is 0; it must be at least 1"
         )));
     }
     if dilation == 0 {
-        return Err(Error::Geometry(format!(
+        return Err(Error::Shape(format!(
             "dilation along the {axis} is 0; it must be at least 1"
         )));
     }
     if kernel == 0 {
-        return Err(Error::Geometry(format!("kernel {axis} is 0")));
+        return Err(Error::Shape(format!("kernel {axis} is 0")));
     }
     if input == 0 {
-        return Err(Error::Geometry(format!("input {axis} is 0")));
+        return Err(Error::Shape(format!("input {axis} is 0")));
     }
     let k_eff = dilation
         .checked_mul(kernel - 1)
         .and_then(|v| v.checked_add(1))
-        .ok_or_else(|| Error::Geometry(format!("dilated kernel {axis} overflows")))?;
+        .ok_or_else(|| Error::Shape(format!("dilated kernel {axis} overflows")))?;
     let (pad_before, pad_after) = match extent {
         Extent::Valid => (0, 0),
         Extent::Full => (k_eff - 1, k_eff - 1),
@@ -221,7 +231,7 @@ pub fn axis_geometry(
         } else {
             String::new()
         };
-        return Err(Error::Geometry(format!(
+        return Err(Error::Shape(format!(
             "kernel {axis} {k_eff}{dil} is larger than the padded input {axis} {padded} \
              (input {input} + padding {pad_before} + {pad_after})"
         )));
@@ -247,36 +257,81 @@ pub fn window_output(
     stride: usize,
 ) -> Result<usize, Error> {
     if window > input {
-        return Err(Error::Geometry(format!(
+        return Err(Error::Shape(format!(
             "window {axis} {window} is larger than its input {axis} {input}, so there is nothing to pool"
         )));
     }
     axis_geometry(axis, input, window, stride, 1, Extent::Valid).map(|g| g.output)
 }
 
-/// Receptive field of a chain of stages, tracked as (size, jump) per axis:
-/// r_out = r_in + (k_eff − 1)·j_in, j_out = j_in·s (Dumoulin & Visin 2016 §2;
-/// common practice for receptive-field arithmetic).
+/// Receptive field of a chain of stages along one axis, tracked as size R,
+/// jump J and offset P: an output at index y reads the input samples
+/// [y·J − P, y·J − P + R − 1]. A further window stage of footprint k_eff,
+/// padding p_before and stride s gives
+///
+/// ```text
+/// R' = R + (k_eff − 1)·J      J' = J·s      P' = P + p_before·J
+/// ```
+///
+/// (Dumoulin & Visin 2016 §2, receptive-field arithmetic; common practice).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct ReceptiveField {
-    /// Input samples one output sees along this axis.
+    /// Input samples one output sees along this axis (R).
     pub size: usize,
-    /// Input samples between neighbouring outputs along this axis.
+    /// Input samples between neighbouring outputs (J).
     pub jump: usize,
+    /// Padding before the first input sample, in input samples (P).
+    pub offset: usize,
 }
 
 impl Default for ReceptiveField {
     fn default() -> Self {
-        ReceptiveField { size: 1, jump: 1 }
+        ReceptiveField {
+            size: 1,
+            jump: 1,
+            offset: 0,
+        }
     }
 }
 
 impl ReceptiveField {
-    /// The field after a further window stage of footprint `k_eff` and stride `stride`.
-    pub fn then(self, k_eff: usize, stride: usize) -> Self {
+    /// The field after a further window stage of footprint `k_eff`, padding
+    /// `pad_before` and stride `stride`.
+    pub fn then(self, k_eff: usize, pad_before: usize, stride: usize) -> Self {
         ReceptiveField {
             size: self.size + (k_eff - 1) * self.jump,
             jump: self.jump * stride,
+            offset: self.offset + pad_before * self.jump,
         }
+    }
+
+    /// The wider of two fields (the larger size; ties keep `self`).
+    pub fn wider(self, other: Self) -> Self {
+        if other.size > self.size {
+            other
+        } else {
+            self
+        }
+    }
+
+    /// The first input sample output `y` reads (negative inside the padding).
+    pub fn start(&self, y: usize) -> isize {
+        (y * self.jump) as isize - self.offset as isize
+    }
+
+    /// How many outputs at the start and at the end of an axis of `input`
+    /// samples and `output` outputs read outside the input, so may depend on
+    /// the pad mode: ceil(P/J) at the start, and at the end those after the
+    /// last output whose field ends inside, floor((input + P − R)/J).
+    pub fn outside(&self, input: usize, output: usize) -> (usize, usize) {
+        let before = self.offset.div_ceil(self.jump).min(output);
+        let last_inside = (input + self.offset)
+            .checked_sub(self.size)
+            .map(|q| q / self.jump);
+        let after = match last_inside {
+            Some(q) => output.saturating_sub(q + 1),
+            None => output,
+        };
+        (before, after)
     }
 }

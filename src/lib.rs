@@ -9,16 +9,16 @@
 //! [`cli`] (the thin command line).
 #![deny(missing_docs)]
 
-pub mod batch;
 pub mod border;
-pub mod borders;
-pub mod cli;
+pub mod digest;
 pub mod engine;
 pub mod error;
 pub mod geometry;
-pub mod io;
+pub mod image_io;
+pub mod jobs;
 pub mod kernel;
-pub mod probe;
+pub mod limits;
+pub mod pipeline;
 pub mod render;
 pub mod stage;
 pub mod stats;

@@ -1,3 +1,7 @@
+//! The `tapmap` binary: the command line in `cli/`, the work in the library.
+
+mod cli;
+
 fn main() {
-    std::process::exit(tapmap::cli::main());
+    std::process::exit(cli::main());
 }

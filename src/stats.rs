@@ -11,27 +11,28 @@
 //! statistical packages", The American Statistician 50(4), 1996, definition 7;
 //! numpy.percentile's default). Sums are accumulated in f64.
 
-/// Statistics of one map.
-#[derive(Debug, Clone, PartialEq)]
+/// Statistics of one map. The figures over finite samples are `None` for a
+/// map that has none.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct MapStats {
     /// Finite samples.
     pub count: usize,
     /// NaN or infinite samples.
     pub non_finite: usize,
     /// Smallest finite sample.
-    pub min: f64,
+    pub min: Option<f64>,
     /// Largest finite sample.
-    pub max: f64,
+    pub max: Option<f64>,
     /// Mean.
-    pub mean: f64,
+    pub mean: Option<f64>,
     /// Population standard deviation.
-    pub std: f64,
+    pub std: Option<f64>,
     /// 1st percentile.
-    pub p1: f64,
+    pub p1: Option<f64>,
     /// Median.
-    pub p50: f64,
+    pub p50: Option<f64>,
     /// 99th percentile.
-    pub p99: f64,
+    pub p99: Option<f64>,
     /// Fraction of all samples that are exactly 0.
     pub zero_fraction: f64,
     /// Fraction of all samples above the threshold, if one was given.
@@ -51,13 +52,13 @@ pub fn map_stats(values: &[f32], threshold: Option<f32>, scratch: &mut Vec<f32>)
         return MapStats {
             count: 0,
             non_finite: values.len(),
-            min: f64::NAN,
-            max: f64::NAN,
-            mean: f64::NAN,
-            std: f64::NAN,
-            p1: f64::NAN,
-            p50: f64::NAN,
-            p99: f64::NAN,
+            min: None,
+            max: None,
+            mean: None,
+            std: None,
+            p1: None,
+            p50: None,
+            p99: None,
             zero_fraction: zeros as f64 / total,
             above_fraction: above,
         };
@@ -81,22 +82,27 @@ pub fn map_stats(values: &[f32], threshold: Option<f32>, scratch: &mut Vec<f32>)
     MapStats {
         count: n,
         non_finite: values.len() - n,
-        min,
-        max,
-        mean,
-        std: var.sqrt(),
-        p1,
-        p50,
-        p99,
+        min: Some(min),
+        max: Some(max),
+        mean: Some(mean),
+        std: Some(var.sqrt()),
+        p1: Some(p1),
+        p50: Some(p50),
+        p99: Some(p99),
         zero_fraction: zeros as f64 / total,
         above_fraction: above,
     }
 }
 
-/// Percentile `p` (0–100) of finite values by linear interpolation (module
-/// header); reorders `v` in place (selection, not a full sort).
+/// Percentile `p` (0–100, clamped) of finite values by linear interpolation
+/// (module header); reorders `v` in place (selection, not a full sort). `NaN`
+/// for no values.
 pub fn percentile(v: &mut [f32], p: f64) -> f64 {
     let n = v.len();
+    if n == 0 {
+        return f64::NAN;
+    }
+    let p = p.clamp(0.0, 100.0);
     let h = (n - 1) as f64 * p / 100.0;
     let lo = h.floor() as usize;
     let (_, x_lo, rest) = v.select_nth_unstable_by(lo, f32::total_cmp);

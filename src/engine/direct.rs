@@ -14,10 +14,13 @@
 //! in parallel; each output sample is summed in the same order whatever the
 //! thread count, so results do not depend on it.
 
-use crate::engine::{for_each_band, out_row, OutPtr, PreparedKernel, PreparedStage, Strategy};
+use crate::engine::bands::for_each_band;
+use crate::engine::buffers::Buffers;
+use crate::engine::prepared::{PreparedKernel, PreparedStage};
+use crate::engine::Strategy;
 
 /// Padded rows, whole-row multiply-adds per tap.
-pub struct Direct;
+pub(crate) struct Direct;
 
 /// Rows per parallel task: enough work per task to hide scheduling costs, few
 /// enough that the input rows a band reads stay in cache across its kernels.
@@ -29,14 +32,8 @@ fn band_rows(out_width: usize, taps: usize) -> usize {
 }
 
 impl Strategy for Direct {
-    fn name(&self) -> &'static str {
-        "direct"
-    }
-
-    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
-        let (oh, ow) = (st.out_height, st.out_width);
-        assert!(out.len() >= st.kernels.len() * oh * ow);
-        let dst = OutPtr(out.as_mut_ptr());
+    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32], _bufs: &Buffers) {
+        let ow = st.out_width;
         // Each band of output rows pads just the input rows it reads and is
         // computed for every kernel of its pad group in turn, while those rows
         // are still in cache.
@@ -44,22 +41,13 @@ impl Strategy for Direct {
         for_each_band(
             st,
             input,
+            out,
             |group| band_rows(ow, taps(group)),
             || (),
-            |_, group, band, rows, pw| {
-                for &n in group {
-                    for oy in band.o0..band.o1 {
-                        // SAFETY: this band alone writes rows [o0, o1) of every
-                        // kernel's plane (checked length above).
-                        let row = unsafe { out_row(dst, st, n, oy) };
-                        conv_row(
-                            &st.kernels[n],
-                            st.channels,
-                            rows,
-                            (band.rows, pw),
-                            oy - band.o0,
-                            row,
-                        );
+            |_, group, band, rows, pw, dst| {
+                for (&n, plane_rows) in group.iter().zip(dst.iter_mut()) {
+                    for (i, row) in plane_rows.chunks_exact_mut(ow).enumerate() {
+                        conv_row(&st.kernels[n], st.channels, rows, (band.rows, pw), i, row);
                     }
                 }
             },

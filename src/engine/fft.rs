@@ -33,13 +33,16 @@ use realfft::num_complex::Complex64;
 use realfft::{ComplexToReal, RealFftPlanner, RealToComplex};
 use rustfft::{Fft as ComplexFft, FftPlanner};
 
-use crate::engine::{pad_input, Geometry, OutPtr, PreparedKernel, PreparedStage, Strategy};
+use crate::engine::bands::{pad_input, row_bands};
+use crate::engine::buffers::Buffers;
+use crate::engine::prepared::{Geometry, PreparedKernel, PreparedStage};
+use crate::engine::Strategy;
 
 /// Large non-separable kernels through the DFT.
-pub struct Fft;
+pub(crate) struct Fft;
 
 /// The smallest n' ≥ n whose prime factors are all ≤ 7.
-pub fn fast_size(n: usize) -> usize {
+pub(crate) fn fast_size(n: usize) -> usize {
     let mut m = n.max(1);
     loop {
         let mut r = m;
@@ -57,7 +60,7 @@ pub fn fast_size(n: usize) -> usize {
 
 /// The tile side along one axis for an effective kernel extent `ek` over `padded`
 /// samples: the fast size with the least estimated work, tiles × T·log2 T.
-pub fn tile_side(ek: usize, padded: usize) -> usize {
+pub(crate) fn tile_side(ek: usize, padded: usize) -> usize {
     let whole = fast_size(padded);
     let valid = padded + 1 - ek;
     let cost = |t: usize| {
@@ -202,11 +205,7 @@ fn transpose_into(a: &[Complex64], rows: usize, cols: usize, out: &mut [Complex6
 }
 
 impl Strategy for Fft {
-    fn name(&self) -> &'static str {
-        "fft"
-    }
-
-    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
+    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32], bufs: &Buffers) {
         // Kernels with the same geometry share the input's tiles and transforms.
         let mut done = vec![false; st.kernels.len()];
         let mut padded = Vec::new();
@@ -218,14 +217,14 @@ impl Strategy for Fft {
             let group: Vec<usize> = (n0..st.kernels.len())
                 .filter(|&n| !done[n] && st.kernels[n].geometry == g)
                 .collect();
-            pad_input(st, &g, input, &mut padded);
+            pad_input(st, &g, input, &mut padded, bufs);
             run_group(st, &g, &padded, &group, out);
             for n in group {
                 done[n] = true;
             }
         }
-        // The scratch goes back for the next run on this thread.
-        crate::engine::give_back(padded);
+        // The scratch goes back for the next run.
+        bufs.give(padded);
     }
 }
 
@@ -258,60 +257,70 @@ fn run_group(st: &PreparedStage, g: &Geometry, padded: &[f32], group: &[usize], 
         })
         .collect();
 
-    let dst = OutPtr(out.as_mut_ptr());
-    let plane_out = oh * ow;
-    (0..vh.div_ceil(step_h)).into_par_iter().for_each(|ty| {
-        let y0 = ty * step_h;
-        let mut s = plans.scratch();
-        let mut specs: Vec<Spectrum> = vec![vec![ZERO; wc * th]; channels];
-        let mut acc: Spectrum = vec![ZERO; wc * th];
-        for tx in 0..vw.div_ceil(step_w) {
-            let x0 = tx * step_w;
-            for (c, spec) in specs.iter_mut().enumerate() {
-                let chan = &padded[c * ph * pw..(c + 1) * ph * pw];
-                plans.forward(&mut s, spec, |y, line| {
-                    if y0 + y >= ph {
-                        return false;
-                    }
-                    let row = &chan[(y0 + y) * pw..(y0 + y + 1) * pw];
-                    let x1 = (x0 + tw).min(pw);
-                    for (d, v) in line.iter_mut().zip(&row[x0..x1]) {
-                        *d = *v as f64;
-                    }
-                    true
-                });
-            }
-            for (i, &n) in group.iter().enumerate() {
-                let k = &st.kernels[n];
-                acc.fill(ZERO);
-                for (spec, kspec) in specs.iter().zip(&kernel_specs[i]) {
-                    for ((a, s), t) in acc.iter_mut().zip(spec).zip(kspec) {
-                        *a += s * t.conj();
-                    }
-                }
-                // Stride-1 row y0 + y is an output row when it is valid, inside
-                // this tile's step, and on the stride.
-                let wanted = |y: usize| y < step_h && y0 + y < vh && (y0 + y) % sy == 0;
-                let (scale, bias) = (k.scale as f64, k.bias as f64);
-                plans.inverse(&mut s, &mut acc, wanted, |y, real| {
-                    let oy = (y0 + y) / sy;
-                    let first = x0.div_ceil(sx);
-                    for ox in first..ow {
-                        let x = ox * sx - x0;
-                        if x >= step_w {
-                            break;
+    // Tile row ty owns stride-1 rows [y0, y0 + step_h) ∩ [0, vh), so the output
+    // rows on the stride within them, [ceil(y0/s), ceil(min(y0 + step_h, vh)/s)):
+    // disjoint bands of every kernel's plane.
+    let tile_rows = vh.div_ceil(step_h);
+    let ranges: Vec<(usize, usize)> = (0..tile_rows)
+        .map(|ty| {
+            let y0 = ty * step_h;
+            (y0.div_ceil(sy), (y0 + step_h).min(vh).div_ceil(sy))
+        })
+        .collect();
+    let dsts = row_bands(out, oh * ow, ow, group, &ranges);
+    (0..tile_rows)
+        .into_par_iter()
+        .zip(dsts)
+        .for_each(|(ty, mut dst)| {
+            let y0 = ty * step_h;
+            let first_row = ranges[ty].0;
+            let mut s = plans.scratch();
+            let mut specs: Vec<Spectrum> = vec![vec![ZERO; wc * th]; channels];
+            let mut acc: Spectrum = vec![ZERO; wc * th];
+            for tx in 0..vw.div_ceil(step_w) {
+                let x0 = tx * step_w;
+                for (c, spec) in specs.iter_mut().enumerate() {
+                    let chan = &padded[c * ph * pw..(c + 1) * ph * pw];
+                    plans.forward(&mut s, spec, |y, line| {
+                        if y0 + y >= ph {
+                            return false;
                         }
-                        let v = (scale * real[x] * norm + bias) as f32;
-                        // SAFETY: output (n, oy, ox) is written by this tile only:
-                        // tile rows own disjoint stride-1 row ranges [y0, y0 +
-                        // step_h), tiles of a row disjoint column ranges, and
-                        // oy < oh, ox < ow.
-                        unsafe { *dst.at(n * plane_out + oy * ow + ox) = v };
+                        let row = &chan[(y0 + y) * pw..(y0 + y + 1) * pw];
+                        let x1 = (x0 + tw).min(pw);
+                        for (d, v) in line.iter_mut().zip(&row[x0..x1]) {
+                            *d = *v as f64;
+                        }
+                        true
+                    });
+                }
+                for (i, &n) in group.iter().enumerate() {
+                    let k = &st.kernels[n];
+                    acc.fill(ZERO);
+                    for (spec, kspec) in specs.iter().zip(&kernel_specs[i]) {
+                        for ((a, s), t) in acc.iter_mut().zip(spec).zip(kspec) {
+                            *a += s * t.conj();
+                        }
                     }
-                });
+                    // Stride-1 row y0 + y is an output row when it is valid, inside
+                    // this tile's step, and on the stride.
+                    let wanted = |y: usize| y < step_h && y0 + y < vh && (y0 + y) % sy == 0;
+                    let (scale, bias) = (k.scale as f64, k.bias as f64);
+                    let plane = &mut dst[i];
+                    plans.inverse(&mut s, &mut acc, wanted, |y, real| {
+                        let oy = (y0 + y) / sy - first_row;
+                        let row = &mut plane[oy * ow..(oy + 1) * ow];
+                        let first = x0.div_ceil(sx);
+                        for (ox, o) in row.iter_mut().enumerate().skip(first) {
+                            let x = ox * sx - x0;
+                            if x >= step_w {
+                                break;
+                            }
+                            *o = (scale * real[x] * norm + bias) as f32;
+                        }
+                    });
+                }
             }
-        }
-    });
+        });
 }
 
 /// Row y of kernel `k`'s channel `c` with its taps spaced by the dilation,
@@ -342,6 +351,25 @@ mod tests {
         for (ek, padded) in [(31, 2078), (3, 10), (9, 9), (61, 4156), (7, 64)] {
             let t = tile_side(ek, padded);
             assert!(t >= ek && t <= fast_size(padded), "{ek} {padded}: {t}");
+        }
+    }
+
+    #[test]
+    fn the_oracle_tests_larger_images_cut_into_several_tiles() {
+        // The (height, kernel rows, dilation) of the multi-tile cases that
+        // `fft_tiles_equal_the_oracle_on_larger_images` checks against the oracle.
+        for (h, kh, d) in [
+            (150, 9, 1),
+            (121, 7, 1),
+            (97, 5, 3),
+            (170, 11, 1),
+            (200, 13, 1),
+        ] {
+            let ekh = d * (kh - 1) + 1;
+            assert!(
+                tile_side(ekh, h + ekh - 1) < fast_size(h + ekh - 1),
+                "{h} rows, {kh}-tap kernel: one tile"
+            );
         }
     }
 }

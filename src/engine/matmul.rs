@@ -8,29 +8,31 @@
 //! OUT[n][(y,x)]     = Σ_(c,u,v) T[n][(c,u,v)] · X[(c,u,v)][(y,x)]
 //! ```
 //!
-//! The product uses the `matrixmultiply` crate's single-threaded sgemm; bands run
+//! The product is ndarray's `general_mat_mul`, which runs the `matrixmultiply`
+//! crate's single-threaded sgemm for these contiguous f32 blocks; bands run
 //! in parallel on the rayon pool, each with its own column buffer of bounded
 //! size, so no matrix library starts threads of its own. Band sizes do not depend
 //! on the thread count, so neither do the results. All kernels must share one
 //! size and padding (the planner checks).
 
+use ndarray::linalg::general_mat_mul;
+use ndarray::{ArrayView2, ArrayViewMut2};
 use rayon::prelude::*;
 
-use crate::engine::{pad_input, OutPtr, PreparedStage, Strategy};
+use crate::engine::bands::{pad_input, row_bands};
+use crate::engine::buffers::Buffers;
+use crate::engine::prepared::PreparedStage;
+use crate::engine::Strategy;
 
 /// Image-to-columns in row bands, then a matrix product per band.
-pub struct Matmul;
+pub(crate) struct Matmul;
 
 /// Output samples per band: enough columns for an efficient product, few
 /// enough that the column buffer (K × this) stays in cache.
 const BAND_COLUMNS: usize = 2048;
 
 impl Strategy for Matmul {
-    fn name(&self) -> &'static str {
-        "matmul"
-    }
-
-    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
+    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32], bufs: &Buffers) {
         let k0 = &st.kernels[0];
         let (gr, gc) = (k0.geometry.rows, k0.geometry.cols);
         let (ph, pw) = (gr.padded(), gc.padded());
@@ -39,23 +41,24 @@ impl Strategy for Matmul {
         let (oh, ow) = (st.out_height, st.out_width);
         let n = st.kernels.len();
         let mut padded_buf = Vec::new();
-        pad_input(st, &k0.geometry, input, &mut padded_buf);
+        pad_input(st, &k0.geometry, input, &mut padded_buf, bufs);
         let weights: Vec<f32> = st
             .kernels
             .iter()
             .flat_map(|k| k.taps.iter().copied())
             .collect();
         let band = (BAND_COLUMNS / ow.max(1)).clamp(1, oh.max(1));
-        let bands = oh.div_ceil(band);
-        assert!(out.len() >= n * oh * ow);
-        let dst = OutPtr(out.as_mut_ptr());
+        let ranges: Vec<(usize, usize)> = (0..oh)
+            .step_by(band)
+            .map(|y0| (y0, (y0 + band).min(oh)))
+            .collect();
+        let kernels: Vec<usize> = (0..n).collect();
+        let dsts = row_bands(out, oh * ow, ow, &kernels, &ranges);
         let padded = &padded_buf[..];
         let weights = &weights[..];
-        (0..bands)
-            .into_par_iter()
-            .for_each_init(Vec::new, |cols, b| {
-                let y0 = b * band;
-                let y1 = (y0 + band).min(oh);
+        ranges.par_iter().zip(dsts).for_each_init(
+            || (Vec::new(), Vec::new()),
+            |(cols, prod), (&(y0, y1), mut dst)| {
                 let m = (y1 - y0) * ow;
                 cols.clear();
                 cols.resize(kk * m, 0.0f32);
@@ -82,37 +85,28 @@ impl Strategy for Matmul {
                         }
                     }
                 }
-                // SAFETY: `weights` is n × kk, `cols` is kk × m, and the destination
-                // block starts at row y0 of kernel 0's plane with a row stride of one
-                // plane (oh·ow), n rows of m contiguous samples: inside `out`, and
-                // disjoint from every other band's block.
-                unsafe {
-                    matrixmultiply::sgemm(
-                        n,
-                        kk,
-                        m,
-                        1.0,
-                        weights.as_ptr(),
-                        kk as isize,
-                        1,
-                        cols.as_ptr(),
-                        m as isize,
-                        1,
-                        0.0,
-                        dst.at(y0 * ow),
-                        (oh * ow) as isize,
-                        1,
-                    );
+                prod.clear();
+                prod.resize(n * m, 0.0f32);
+                let a = ArrayView2::from_shape((n, kk), weights).expect("n × kk weights");
+                let b = ArrayView2::from_shape((kk, m), &cols[..]).expect("kk × m columns");
+                let mut c =
+                    ArrayViewMut2::from_shape((n, m), &mut prod[..]).expect("n × m product");
+                // Single-threaded sgemm (matrixmultiply, through ndarray); with
+                // beta 0 the product's old contents are not read.
+                general_mat_mul(1.0, &a, &b, 0.0, &mut c);
+                for (k, (to, from)) in dst.iter_mut().zip(prod.chunks_exact(m)).enumerate() {
+                    let (scale, bias) = (st.kernels[k].scale, st.kernels[k].bias);
+                    if scale != 1.0 || bias != 0.0 {
+                        for (o, v) in to.iter_mut().zip(from) {
+                            *o = *v * scale + bias;
+                        }
+                    } else {
+                        to.copy_from_slice(from);
+                    }
                 }
-            });
-        for (k, plane) in st.kernels.iter().zip(out.chunks_exact_mut(oh * ow)) {
-            if k.scale != 1.0 || k.bias != 0.0 {
-                plane
-                    .par_iter_mut()
-                    .for_each(|o| *o = *o * k.scale + k.bias);
-            }
-        }
-        // The scratch goes back for the next run on this thread.
-        crate::engine::give_back(padded_buf);
+            },
+        );
+        // The scratch goes back for the next run.
+        bufs.give(padded_buf);
     }
 }

@@ -2,17 +2,15 @@
 //! channel and tap, each input position looked up through the pad mode.
 //! Slow and obviously right; it defines what the fast strategies must compute.
 
-use crate::engine::{PreparedStage, Strategy};
+use crate::engine::buffers::Buffers;
+use crate::engine::prepared::PreparedStage;
+use crate::engine::Strategy;
 
 /// Per-pixel sums with a border lookup per tap.
-pub struct Reference;
+pub(crate) struct Reference;
 
 impl Strategy for Reference {
-    fn name(&self) -> &'static str {
-        "reference"
-    }
-
-    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
+    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32], _bufs: &Buffers) {
         let (h, w) = (st.height, st.width);
         let plane_out = st.out_height * st.out_width;
         for (n, k) in st.kernels.iter().enumerate() {

@@ -14,11 +14,14 @@
 //! output is summed in a fixed order, so results do not depend on the thread
 //! count.
 
+use crate::engine::bands::{for_each_band, Band};
+use crate::engine::buffers::Buffers;
+use crate::engine::prepared::PreparedStage;
 use crate::engine::simd::axpy;
-use crate::engine::{for_each_band, out_row, Band, OutPtr, PreparedStage, Strategy};
+use crate::engine::Strategy;
 
 /// Horizontal then vertical 1-D passes for rank-1 kernels.
-pub struct Separable;
+pub(crate) struct Separable;
 
 /// Output rows per band: about 32, fewer for very wide rows.
 fn band_rows(out_width: usize) -> usize {
@@ -26,43 +29,33 @@ fn band_rows(out_width: usize) -> usize {
 }
 
 impl Strategy for Separable {
-    fn name(&self) -> &'static str {
-        "separable"
-    }
-
-    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32]) {
-        let (oh, ow) = (st.out_height, st.out_width);
-        assert!(out.len() >= st.kernels.len() * oh * ow);
-        let dst = OutPtr(out.as_mut_ptr());
+    fn run(&self, st: &PreparedStage, input: &[f32], out: &mut [f32], _bufs: &Buffers) {
+        let ow = st.out_width;
         for_each_band(
             st,
             input,
+            out,
             |_| band_rows(ow),
             Vec::new,
-            |tmp, group, band, rows, pw| {
-                for &n in group {
-                    // SAFETY: this band alone writes rows [o0, o1) of every
-                    // kernel's plane (checked length above).
-                    unsafe { kernel_band(st, n, band, rows, pw, tmp, dst) };
+            |tmp, group, band, rows, pw, dst| {
+                for (&n, plane_rows) in group.iter().zip(dst.iter_mut()) {
+                    kernel_band(st, n, band, rows, pw, tmp, plane_rows);
                 }
             },
         );
     }
 }
 
-/// Output rows [band.o0, band.o1) of kernel `n` from the band's padded rows.
-///
-/// # Safety
-/// `dst` must point at the stage's output, and no other task may write these
-/// rows meanwhile.
-unsafe fn kernel_band(
+/// Output rows [band.o0, band.o1) of kernel `n` from the band's padded rows,
+/// into `dst` (those rows of the kernel's plane).
+fn kernel_band(
     st: &PreparedStage,
     n: usize,
     band: Band,
     rows: &[f32],
     pw: usize,
     tmp: &mut Vec<f32>,
-    dst: OutPtr,
+    dst: &mut [f32],
 ) {
     let ow = st.out_width;
     let k = &st.kernels[n];
@@ -71,11 +64,7 @@ unsafe fn kernel_band(
         .as_ref()
         .expect("the planner chooses separable only for rank-1 kernels");
     let (gr, gc) = (k.geometry.rows, k.geometry.cols);
-    // SAFETY: the caller's promise covers every row of the band.
-    let out = |oy: usize| unsafe { out_row(dst, st, n, oy) };
-    for oy in band.o0..band.o1 {
-        out(oy).fill(0.0);
-    }
+    dst.fill(0.0);
     for (c, f) in factors.iter().enumerate() {
         let Some((u, v)) = f else { continue };
         let chan = &rows[c * band.rows * pw..(c + 1) * band.rows * pw];
@@ -96,21 +85,18 @@ unsafe fn kernel_band(
                 }
             }
         }
-        for oy in band.o0..band.o1 {
-            let row = out(oy);
-            for (i, &t) in u.iter().enumerate() {
+        for (i, row) in dst.chunks_exact_mut(ow).enumerate() {
+            for (j, &t) in u.iter().enumerate() {
                 if t == 0.0 {
                     continue;
                 }
-                let r = (oy - band.o0) * gr.stride + i * gr.dilation;
+                let r = i * gr.stride + j * gr.dilation;
                 axpy(row, t, &tmp[r * ow..(r + 1) * ow]);
             }
         }
     }
     let (scale, bias) = (k.scale, k.bias);
     if scale != 1.0 || bias != 0.0 {
-        for oy in band.o0..band.o1 {
-            out(oy).iter_mut().for_each(|o| *o = *o * scale + bias);
-        }
+        dst.iter_mut().for_each(|o| *o = *o * scale + bias);
     }
 }

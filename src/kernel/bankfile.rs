@@ -104,28 +104,29 @@ pub(crate) fn line_col(text: &str, offset: usize) -> (usize, usize) {
     (line, col)
 }
 
-/// A TOML parse error as "line L, column C: message".
-pub(crate) fn toml_message(text: &str, e: &toml::de::Error) -> String {
-    match e.span() {
-        Some(s) => {
-            let (l, c) = line_col(text, s.start);
-            format!("line {l}, column {c}: {}", e.message())
-        }
-        None => e.message().to_string(),
-    }
+/// A TOML parse error's place (line, column) and message.
+pub(crate) fn toml_error(text: &str, e: &toml::de::Error) -> (Option<(usize, usize)>, String) {
+    (
+        e.span().map(|s| line_col(text, s.start)),
+        e.message().trim_end().to_string(),
+    )
 }
 
 /// Parses a bank from TOML text; `origin` names the file in messages.
 pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
-    let err = |message: String| Error::File {
-        path: origin.to_path_buf(),
+    let located = |at: Option<(usize, usize)>, message: String| Error::Bank {
+        file: Some(origin.to_path_buf()),
+        at,
         message,
     };
+    let err = |message: String| located(None, message);
     let at = |span: std::ops::Range<usize>, message: String| {
-        let (l, c) = line_col(text, span.start);
-        err(format!("line {l}, column {c}: {message}"))
+        located(Some(line_col(text, span.start)), message)
     };
-    let file: FileIn = toml::from_str(text).map_err(|e| err(toml_message(text, &e)))?;
+    let file: FileIn = toml::from_str(text).map_err(|e| {
+        let (place, message) = toml_error(text, &e);
+        located(place, message)
+    })?;
     let stem = origin.file_stem().map(|s| s.to_string_lossy().into_owned());
     let name = file.name.or(stem).unwrap_or_else(|| "bank".into());
     if file.kernel.is_empty() {
@@ -160,7 +161,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
         }
         let mut kernel = if let Some(t) = k.taps {
             let s = t.span();
-            Kernel::from_rows(&kname, t.get_ref()).map_err(|e| at(s, e.to_string()))?
+            Kernel::from_rows(&kname, t.get_ref()).map_err(|e| at(s, e.problem()))?
         } else if let Some(ps) = k.planes {
             let s = ps.span();
             let ps = ps.into_inner();
@@ -171,7 +172,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
             let mut shape = None;
             for (c, rows) in ps.iter().enumerate() {
                 let (r, w, p) = plane_from_rows(&format!("{kname}' plane '{c}"), rows)
-                    .map_err(|e| at(s.clone(), e.to_string()))?;
+                    .map_err(|e| at(s.clone(), e.problem()))?;
                 if *shape.get_or_insert((r, w)) != (r, w) {
                     let (r0, w0) = shape.unwrap_or_default();
                     return Err(at(
@@ -197,25 +198,19 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
                 params: k.params.unwrap_or_default(),
             };
             spec.build(Some(&kname))
-                .map_err(|e| at(span.clone(), e.to_string()))?
+                .map_err(|e| at(span.clone(), e.problem()))?
         };
         for (field, v, target) in [
             ("scale", k.scale, &mut kernel.scale),
             ("bias", k.bias, &mut kernel.bias),
         ] {
             if let Some(v) = v {
-                if !v.get_ref().is_finite() {
-                    return Err(at(
-                        v.span(),
-                        format!(
-                            "kernel '{kname}': {field} must be finite, got {}",
-                            v.get_ref()
-                        ),
-                    ));
-                }
+                crate::kernel::check_number(&kname, field, *v.get_ref())
+                    .map_err(|e| at(v.span(), e.problem()))?;
                 *target = *v.get_ref();
             }
         }
+        kernel.validate().map_err(|e| at(span, e.problem()))?;
         kernels.push(kernel);
     }
     let mut normalize = None;
@@ -227,7 +222,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
             std: n.std,
         };
         norm.validate(kernels[0].channels())
-            .map_err(|e| at(span, e.to_string()))?;
+            .map_err(|e| at(span, e.problem()))?;
         normalize = Some(norm);
     }
     let bank = Bank {
@@ -237,7 +232,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
         kernels,
         normalize,
     };
-    bank.validate().map_err(|e| err(e.to_string()))?;
+    bank.validate().map_err(|e| err(e.problem()))?;
     Ok(bank)
 }
 
@@ -284,7 +279,6 @@ pub fn bank_to_toml(bank: &Bank) -> Result<String, Error> {
         }),
         kernel,
     };
-    let body =
-        toml::to_string(&out).map_err(|e| Error::Kernel(format!("cannot write bank: {e}")))?;
+    let body = toml::to_string(&out).map_err(|e| Error::bank(format!("cannot write bank: {e}")))?;
     Ok(format!("# tapmap bank file\n{body}"))
 }

@@ -55,7 +55,7 @@ pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
                 .iter()
                 .map(|f| f.name)
                 .chain(SHIPPED_BANKS.iter().map(|(n, _)| *n));
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "'{}' is not a bank file, a shipped bank or a kernel family{} \
                  (`tapmap bank list` shows them all)",
                 spec.family,
@@ -68,6 +68,39 @@ pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
         normalize: None,
         name: arg.to_string(),
         op: Op::Correlate,
+        description: None,
+        kernels,
+    };
+    bank.validate()?;
+    Ok(bank)
+}
+
+/// A bank from family specs as `bank make` takes them: `FAMILY[:KEY=VALUE,...]`,
+/// where a lone `KEY=VALUE` applies to the family before it.
+pub fn bank_from_specs(specs: &[String], name: &str, op: Op) -> Result<Bank, Error> {
+    let mut parsed: Vec<FamilySpec> = Vec::new();
+    for s in specs {
+        match (s.contains('='), s.contains(':'), parsed.last_mut()) {
+            (true, false, Some(last)) => {
+                let extra = FamilySpec::parse(&format!("x:{s}"))?;
+                last.params.extend(extra.params);
+            }
+            (true, false, None) => {
+                return Err(Error::bank(format!(
+                    "parameter '{s}' comes before any family"
+                )))
+            }
+            _ => parsed.push(FamilySpec::parse(s)?),
+        }
+    }
+    let kernels = parsed
+        .iter()
+        .map(|s| s.build(None))
+        .collect::<Result<Vec<_>, _>>()?;
+    let bank = Bank {
+        normalize: None,
+        name: name.to_string(),
+        op,
         description: None,
         kernels,
     };

@@ -38,10 +38,10 @@ impl FamilySpec {
         let mut params = BTreeMap::new();
         for item in rest.split(',').filter(|p| !p.trim().is_empty()) {
             let (k, v) = item.split_once('=').ok_or_else(|| {
-                Error::Kernel(format!("parameter '{item}' in '{s}' is not key=value"))
+                Error::bank(format!("parameter '{item}' in '{s}' is not key=value"))
             })?;
             let v: f64 = v.trim().parse().map_err(|_| {
-                Error::Kernel(format!("parameter {k} in '{s}' is not a number: '{v}'"))
+                Error::bank(format!("parameter {k} in '{s}' is not a number: '{v}'"))
             })?;
             params.insert(k.trim().to_string(), v);
         }
@@ -54,7 +54,7 @@ impl FamilySpec {
     /// Builds the kernel, named after the spec unless `name` is given.
     pub fn build(&self, name: Option<&str>) -> Result<Kernel, Error> {
         let info = find(&self.family).ok_or_else(|| {
-            Error::Kernel(format!(
+            Error::bank(format!(
                 "unknown kernel family '{}'{}",
                 self.family,
                 near_names_hint(&self.family, FAMILIES.iter().map(|f| f.name))
@@ -63,7 +63,7 @@ impl FamilySpec {
         for k in self.params.keys() {
             if !info.params.iter().any(|p| p.name == k) {
                 let known: Vec<&str> = info.params.iter().map(|p| p.name).collect();
-                return Err(Error::Kernel(format!(
+                return Err(Error::bank(format!(
                     "family '{}' has no parameter '{k}' (its parameters: {})",
                     info.name,
                     if known.is_empty() {
@@ -126,7 +126,7 @@ impl Params<'_> {
         if v.is_finite() && v > 0.0 {
             Ok(v)
         } else {
-            Err(Error::Kernel(format!(
+            Err(Error::bank(format!(
                 "{}: {name} must be a positive number, got {v}",
                 self.info.name
             )))
@@ -137,7 +137,7 @@ impl Params<'_> {
         if v.is_finite() {
             Ok(v)
         } else {
-            Err(Error::Kernel(format!(
+            Err(Error::bank(format!(
                 "{}: {name} must be finite, got {v}",
                 self.info.name
             )))
@@ -152,7 +152,7 @@ impl Params<'_> {
             } else {
                 "a whole number"
             };
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "{}: {name} must be {what} from 1 to 1025, got {v}",
                 self.info.name
             )));
@@ -168,12 +168,12 @@ impl Params<'_> {
         if r.is_finite() && r >= 0.0 && r.fract() == 0.0 && r <= 512.0 {
             Ok(r as usize)
         } else if given {
-            Err(Error::Kernel(format!(
+            Err(Error::bank(format!(
                 "{}: radius must be a whole number from 0 to 512, got {r}",
                 self.info.name
             )))
         } else {
-            Err(Error::Kernel(format!(
+            Err(Error::bank(format!(
                 "{}: sigma {sigma} needs radius {r}, over the limit of 512",
                 self.info.name
             )))

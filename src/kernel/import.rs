@@ -64,8 +64,9 @@ pub struct ImportOptions {
 }
 
 fn err(path: &Path, m: impl Into<String>) -> Error {
-    Error::File {
-        path: path.to_path_buf(),
+    Error::Bank {
+        file: Some(path.to_path_buf()),
+        at: None,
         message: m.into(),
     }
 }
@@ -87,15 +88,6 @@ pub fn kernels_from(t: &Tensor, layout: Layout, path: &Path) -> Result<Vec<Kerne
         return Err(err(
             path,
             format!("tensor {} has a zero-sized dimension {:?}", t.name, t.shape),
-        ));
-    }
-    if let Some(at) = t.data.iter().position(|v| !v.is_finite()) {
-        return Err(err(
-            path,
-            format!(
-                "tensor {} has a non-finite weight {} at flat index {at}",
-                t.name, t.data[at]
-            ),
         ));
     }
     let at = |n: usize, c: usize, y: usize, x: usize| -> f64 {
@@ -144,12 +136,6 @@ pub fn import_bank(path: &Path, opts: &ImportOptions) -> Result<Bank, Error> {
                 ),
             ));
         }
-        if let Some(v) = b.data.iter().find(|v| !v.is_finite()) {
-            return Err(err(
-                path,
-                format!("bias {} has a non-finite value {v}", b.name),
-            ));
-        }
         for (k, v) in kernels.iter_mut().zip(&b.data) {
             k.bias = *v as f64;
         }
@@ -162,7 +148,7 @@ pub fn import_bank(path: &Path, opts: &ImportOptions) -> Result<Bank, Error> {
                 mean: m.clone(),
                 std: s.clone(),
             };
-            n.validate(channels).map_err(|e| err(path, e.to_string()))?;
+            n.validate(channels).map_err(|e| err(path, e.problem()))?;
             Some(n)
         }
         _ => return Err(err(path, "give --mean and --std together")),
@@ -192,7 +178,7 @@ pub fn import_bank(path: &Path, opts: &ImportOptions) -> Result<Bank, Error> {
         kernels,
         normalize,
     };
-    bank.validate()?;
+    bank.validate().map_err(|e| e.in_file(path))?;
     Ok(bank)
 }
 

@@ -15,6 +15,7 @@
 pub mod analysis;
 pub mod bankfile;
 pub mod builtin;
+pub mod describe;
 pub mod families;
 pub mod import;
 pub mod tensors;
@@ -123,42 +124,83 @@ impl Kernel {
         self.planes[c].iter().rev().copied().collect()
     }
 
-    /// Checks the invariants every kernel must hold: at least one tap and one plane,
-    /// planes of the stated size, finite taps, scale and bias.
+    /// Checks the invariants every kernel must hold: at least one tap and one
+    /// plane, planes of the stated size, taps, scale and bias finite and
+    /// representable in f32 (the engine's precision), and a largest possible
+    /// response, Σ|taps| · |scale| over inputs in [−1, 1], that f32 can hold.
     pub fn validate(&self) -> Result<(), Error> {
         let n = &self.name;
         if self.rows == 0 || self.cols == 0 {
-            return Err(Error::Kernel(format!("kernel '{n}' has no taps")));
+            return Err(Error::bank(format!("kernel '{n}' has no taps")));
         }
         if self.planes.is_empty() {
-            return Err(Error::Kernel(format!("kernel '{n}' has no planes")));
+            return Err(Error::bank(format!("kernel '{n}' has no planes")));
         }
         for (c, p) in self.planes.iter().enumerate() {
             if p.len() != self.rows * self.cols {
-                return Err(Error::Kernel(format!(
+                return Err(Error::bank(format!(
                     "kernel '{n}' plane {c} has {} taps, expected {}×{}",
                     p.len(),
                     self.rows,
                     self.cols
                 )));
             }
-            if let Some(i) = p.iter().position(|v| !v.is_finite()) {
-                return Err(Error::Kernel(format!(
-                    "kernel '{n}' plane {c} has a non-finite tap {} at row {}, column {}",
-                    p[i],
-                    i / self.cols,
-                    i % self.cols
-                )));
-            }
+            let label = if self.planes.len() > 1 {
+                format!("'{n}' plane {c}")
+            } else {
+                format!("'{n}'")
+            };
+            check_taps(&label, p, self.cols)?;
         }
-        if !self.scale.is_finite() || !self.bias.is_finite() {
-            return Err(Error::Kernel(format!(
-                "kernel '{n}' has a non-finite scale ({}) or bias ({})",
-                self.scale, self.bias
+        check_number(n, "scale", self.scale)?;
+        check_number(n, "bias", self.bias)?;
+        let l1: f64 = self.planes.iter().flatten().map(|t| t.abs()).sum();
+        if l1 * self.scale.abs() > f32::MAX as f64 {
+            return Err(Error::bank(format!(
+                "kernel '{n}': the sum of its |taps| times its scale ({:e}) is larger than float32 \
+                 can hold, so every response would overflow; scale the taps down",
+                l1 * self.scale.abs()
             )));
         }
         Ok(())
     }
+}
+
+/// Checks a plane's taps (row-major, `cols` wide) for kernel `label`: each
+/// finite and within float32's range.
+pub(crate) fn check_taps(label: &str, taps: &[f64], cols: usize) -> Result<(), Error> {
+    if let Some(i) = taps
+        .iter()
+        .position(|v| !v.is_finite() || v.abs() > f32::MAX as f64)
+    {
+        let what = if taps[i].is_finite() {
+            "a tap too large for float32"
+        } else {
+            "a non-finite tap"
+        };
+        return Err(Error::bank(format!(
+            "kernel {label} has {what} {} at row {}, column {}",
+            taps[i],
+            i / cols.max(1),
+            i % cols.max(1)
+        )));
+    }
+    Ok(())
+}
+
+/// Checks a kernel's scale or bias: finite and within float32's range.
+pub(crate) fn check_number(kernel: &str, field: &str, v: f64) -> Result<(), Error> {
+    if !v.is_finite() {
+        return Err(Error::bank(format!(
+            "kernel '{kernel}': {field} must be finite, got {v}"
+        )));
+    }
+    if v.abs() > f32::MAX as f64 {
+        return Err(Error::bank(format!(
+            "kernel '{kernel}': {field} {v:e} is too large for float32"
+        )));
+    }
+    Ok(())
 }
 
 /// Turns rows of taps into (rows, cols, row-major plane), refusing empty, ragged
@@ -167,23 +209,16 @@ pub fn plane_from_rows(name: &str, rows: &[Vec<f64>]) -> Result<(usize, usize, V
     let r = rows.len();
     let c = rows.first().map_or(0, Vec::len);
     if r == 0 || c == 0 {
-        return Err(Error::Kernel(format!("kernel '{name}' has empty taps")));
+        return Err(Error::bank(format!("kernel '{name}' has empty taps")));
     }
     if let Some((i, row)) = rows.iter().enumerate().find(|(_, row)| row.len() != c) {
-        return Err(Error::Kernel(format!(
+        return Err(Error::bank(format!(
             "kernel '{name}' has ragged taps: row 0 has {c} values but row {i} has {}",
             row.len()
         )));
     }
     let plane: Vec<f64> = rows.iter().flatten().copied().collect();
-    if let Some(i) = plane.iter().position(|v| !v.is_finite()) {
-        return Err(Error::Kernel(format!(
-            "kernel '{name}' has a non-finite tap {} at row {}, column {}",
-            plane[i],
-            i / c,
-            i % c
-        )));
-    }
+    check_taps(&format!("'{name}'"), &plane, c)?;
     Ok((r, c, plane))
 }
 
@@ -216,19 +251,19 @@ impl Normalize {
     /// Checks the counts against `channels`, and that every std is finite and non-zero.
     pub fn validate(&self, channels: usize) -> Result<(), Error> {
         if self.mean.len() != channels || self.std.len() != channels {
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "normalisation has {} mean and {} std values but the kernels take {channels} channel(s)",
                 self.mean.len(),
                 self.std.len()
             )));
         }
         if let Some(s) = self.std.iter().find(|s| !s.is_finite() || **s == 0.0) {
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "normalisation std {s} must be finite and non-zero"
             )));
         }
         if let Some(m) = self.mean.iter().find(|m| !m.is_finite()) {
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "normalisation mean {m} must be finite"
             )));
         }
@@ -249,17 +284,14 @@ impl Bank {
     /// that all kernels take the same number of input channels.
     pub fn validate(&self) -> Result<(), Error> {
         if self.kernels.is_empty() {
-            return Err(Error::Kernel(format!(
-                "bank '{}' has no kernels",
-                self.name
-            )));
+            return Err(Error::bank(format!("bank '{}' has no kernels", self.name)));
         }
         for k in &self.kernels {
             k.validate()?;
         }
         let c0 = self.kernels[0].channels();
         if let Some(k) = self.kernels.iter().find(|k| k.channels() != c0) {
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "bank '{}': kernel '{}' has {} planes but '{}' has {c0}; all kernels of a bank \
                  must take the same input channels",
                 self.name,
@@ -270,12 +302,12 @@ impl Bank {
         }
         if let Some(n) = &self.normalize {
             n.validate(c0)
-                .map_err(|e| Error::Kernel(format!("bank '{}': {e}", self.name)))?;
+                .map_err(|e| Error::bank(format!("bank '{}': {e}", self.name)))?;
         }
         let mut names: Vec<&str> = self.kernels.iter().map(|k| k.name.as_str()).collect();
         names.sort_unstable();
         if let Some(w) = names.windows(2).find(|w| w[0] == w[1]) {
-            return Err(Error::Kernel(format!(
+            return Err(Error::bank(format!(
                 "bank '{}' has two kernels named '{}'; names label output channels and must differ",
                 self.name, w[0]
             )));
@@ -310,7 +342,7 @@ impl Bank {
                 h.update(v.to_le_bytes());
             }
         }
-        h.finalize().iter().map(|b| format!("{b:02x}")).collect()
+        crate::digest::hex(&h.finalize())
     }
 
     /// Input channels every kernel expects.

@@ -3,9 +3,9 @@
 //! - `.npy` follows the format as NumPy documents it (numpy.lib.format): the magic
 //!   `\x93NUMPY`, a major/minor version (1.0: 2-byte little-endian header length;
 //!   2.0 and 3.0: 4-byte), a header that is a Python dict literal with `descr`,
-//!   `fortran_order` and `shape`, then the raw data. This parser is written here
-//!   because ndarray-npy reads neither float16 nor headers on their own (needed to
-//!   list a file's tensors without reading their data).
+//!   `fortran_order` and `shape`, then the raw data. The header is read with
+//!   ndarray-npy's header reader; the data is converted here, because
+//!   ndarray-npy reads neither float16 nor bfloat16.
 //! - `.npz` is a zip archive of `.npy` members (`numpy.savez`, stored or deflated).
 //! - safetensors: an 8-byte little-endian header length, a JSON header of
 //!   name → {dtype, shape, data_offsets}, then the buffer; read with the
@@ -55,8 +55,9 @@ impl std::fmt::Display for TensorInfo {
 }
 
 fn err(path: &Path, m: impl Into<String>) -> Error {
-    Error::File {
-        path: path.to_path_buf(),
+    Error::Bank {
+        file: Some(path.to_path_buf()),
+        at: None,
         message: m.into(),
     }
 }
@@ -117,83 +118,37 @@ pub struct NpyHeader {
     pub data_offset: usize,
 }
 
-/// Parses the header of `.npy` bytes (see the module header).
+/// Parses the header of `.npy` bytes with ndarray-npy's header reader (magic,
+/// version 1.0/2.0/3.0, the dict literal with `descr`, `fortran_order` and
+/// `shape`); the data starts where the reader stopped.
 pub fn parse_npy_header(bytes: &[u8]) -> Result<NpyHeader, String> {
-    if bytes.len() < 10 || &bytes[..6] != b"\x93NUMPY" {
+    use ndarray_npy::npy::header::{Header, ParseHeaderError, ReadHeaderError};
+    if !bytes.starts_with(b"\x93NUMPY") {
         return Err("is not a NumPy .npy file (no \\x93NUMPY magic)".into());
     }
-    let (major, minor) = (bytes[6], bytes[7]);
-    let (len, start) = match major {
-        1 => (u16::from_le_bytes([bytes[8], bytes[9]]) as usize, 10usize),
-        2 | 3 => {
-            if bytes.len() < 12 {
-                return Err("is truncated inside its header length".into());
-            }
-            (
-                u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]) as usize,
-                12,
-            )
+    let mut cursor = std::io::Cursor::new(bytes);
+    let header = Header::from_reader(&mut cursor).map_err(|e| match e {
+        ReadHeaderError::Io(_) => {
+            "is truncated inside its header (not a whole NumPy .npy file)".to_string()
         }
-        _ => {
-            return Err(format!(
-                "has .npy format version {major}.{minor}; tapmap reads 1.0, 2.0 and 3.0"
-            ))
+        ReadHeaderError::Parse(ParseHeaderError::Version { major, minor }) => {
+            format!("has .npy format version {major}.{minor}; tapmap reads 1.0, 2.0 and 3.0")
         }
-    };
-    let end = start
-        .checked_add(len)
-        .filter(|e| *e <= bytes.len())
-        .ok_or_else(|| {
-            format!(
-                "claims a {len}-byte header but holds only {} bytes after the preamble",
-                bytes.len().saturating_sub(start)
-            )
-        })?;
-    let text = std::str::from_utf8(&bytes[start..end])
-        .map_err(|_| "has a header that is not text".to_string())?;
-    let field = |key: &str| -> Result<&str, String> {
-        let k = text
-            .find(&format!("'{key}'"))
-            .ok_or_else(|| format!("header lacks '{key}': {}", text.trim()))?;
-        let rest = &text[k + key.len() + 2..];
-        let colon = rest
-            .find(':')
-            .ok_or_else(|| format!("header has no value for '{key}'"))?;
-        Ok(rest[colon + 1..].trim_start())
-    };
-    let d = field("descr")?;
-    let q = d
-        .chars()
-        .next()
-        .filter(|c| *c == '\'' || *c == '"')
-        .ok_or("header's descr is not a string")?;
-    let descr = d[1..].split(q).next().unwrap_or_default().to_string();
-    let f = field("fortran_order")?;
-    let fortran = if f.starts_with("True") {
-        true
-    } else if f.starts_with("False") {
-        false
-    } else {
-        return Err("header's fortran_order is neither True nor False".into());
-    };
-    let s = field("shape")?;
-    let open = s.strip_prefix('(').ok_or("header's shape is not a tuple")?;
-    let close = open.find(')').ok_or("header's shape tuple is not closed")?;
-    let shape = open[..close]
-        .split(',')
-        .map(str::trim)
-        .filter(|p| !p.is_empty())
-        .map(|p| {
-            p.trim_end_matches('L')
-                .parse::<usize>()
-                .map_err(|_| format!("header's shape has '{p}'"))
-        })
-        .collect::<Result<Vec<_>, _>>()?;
+        ReadHeaderError::Parse(p) => format!("has a header that does not parse: {p}"),
+    })?;
+    // The descriptor is a Python literal: a quoted string for the plain dtypes
+    // read here, a list for structured ones.
+    let literal = header.type_descriptor.to_string();
+    let descr = literal
+        .strip_prefix(['\'', '"'])
+        .and_then(|d| d.strip_suffix(['\'', '"']))
+        .ok_or_else(|| format!("has the dtype {literal}, which is not a plain number type"))?
+        .to_string();
     Ok(NpyHeader {
         descr,
-        fortran,
-        shape,
-        data_offset: end,
+        fortran: header.layout.is_fortran(),
+        shape: header.shape,
+        data_offset: cursor.position() as usize,
     })
 }
 
@@ -255,6 +210,8 @@ pub struct NpyArray {
     pub data: Vec<f32>,
     /// The integer type's full scale (255, 65535), or `None` for float.
     pub full_scale: Option<u32>,
+    /// Bits per sample as stored (8, 16, 32 or 64).
+    pub bits: u8,
 }
 
 /// An image array from `.npy` bytes (uint8, uint16, float32, float64).
@@ -269,6 +226,7 @@ pub fn npy_array(bytes: &[u8]) -> Result<NpyArray, String> {
         shape: h.shape,
         data,
         full_scale,
+        bits: (elem.size() * 8) as u8,
     })
 }
 
@@ -284,8 +242,17 @@ fn npy_values(bytes: &[u8], allow_int: bool) -> Result<(NpyHeader, Vec<f32>, Ele
     let have = bytes.len() - h.data_offset;
     if need > have {
         return Err(format!(
-            "claims {need} bytes of data ({:?} {}) but holds {have}",
+            "is truncated: its header claims {need} bytes of data ({:?} {}) but it holds {have}",
             h.shape, h.descr
+        ));
+    }
+    if have > need {
+        return Err(format!(
+            "has {} bytes after its data ({need} bytes for {:?} {}); the file is damaged \
+             or not what its header says",
+            have - need,
+            h.shape,
+            h.descr
         ));
     }
     let mut data = convert(&bytes[h.data_offset..h.data_offset + need], elem, big);

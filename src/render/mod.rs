@@ -11,7 +11,7 @@ use image::codecs::png::{CompressionType, FilterType, PngEncoder};
 use image::{ExtendedColorType, ImageEncoder};
 
 use crate::error::Error;
-use crate::io::atomic::write_atomic;
+use crate::image_io::atomic::write_atomic;
 
 /// Writes PNG bytes atomically with fast compression (zlib level 1 was measured
 /// several times faster than the default with files no larger; the PNG encoder
@@ -58,13 +58,13 @@ pub fn write_view(path: &Path, v: &view::ViewImage) -> Result<(), Error> {
 /// The input image as people see it: r, g, b channels in colour, anything else as
 /// grey; integer inputs as read (0–1 to 0–255), float inputs stretched from their
 /// minimum to their maximum.
-pub fn input_picture(img: &crate::io::read::LoadedImage) -> image::RgbImage {
+pub fn input_picture(img: &crate::image_io::LoadedImage) -> image::RgbImage {
     let (c, h, w) = img.data.dim();
     region_picture(img, (0, 0, h, w), c)
 }
 
 /// Display range of an input: (0, 1) for integer samples, min–max for float.
-fn display_range(img: &crate::io::read::LoadedImage) -> (f32, f32) {
+fn display_range(img: &crate::image_io::LoadedImage) -> (f32, f32) {
     if img.meta.float {
         let f = img.data.iter().copied().filter(|v| v.is_finite());
         let lo = f.clone().fold(f32::INFINITY, f32::min);
@@ -82,7 +82,7 @@ pub const OUTSIDE: [[u8; 3]; 2] = [[150, 40, 60], [90, 24, 36]];
 /// A region of the input, rows y0.. y0+h and columns x0.. x0+w (which may reach
 /// outside the image: those pixels are drawn as a dark red hatch).
 pub fn region_picture(
-    img: &crate::io::read::LoadedImage,
+    img: &crate::image_io::LoadedImage,
     (y0, x0, h, w): (isize, isize, usize, usize),
     channels: usize,
 ) -> image::RgbImage {

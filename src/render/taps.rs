@@ -27,7 +27,19 @@ pub fn extreme(k: &Kernel) -> f64 {
 }
 
 /// The taps of one kernel, one pixel per tap.
+///
+/// # Panics
+/// When a plane does not hold rows × cols taps ([`Kernel::validate`] says why)
+/// or `table` does not have 256 entries.
 pub fn taps_picture(k: &Kernel, table: &[[u8; 3]]) -> RgbImage {
+    assert!(
+        k.planes.iter().all(|p| p.len() == k.rows * k.cols),
+        "kernel '{}' has a plane that is not {}×{}",
+        k.name,
+        k.rows,
+        k.cols
+    );
+    assert_eq!(table.len(), 256, "the diverging table has 256 entries");
     let m = extreme(k);
     let (h, w) = (k.rows as u32, k.cols as u32);
     let div = |t: f64| Rgb(table[(127.5 + 127.5 * (t / m).clamp(-1.0, 1.0)).round() as usize]);

@@ -14,13 +14,23 @@
 //! as level 0 (grey) or the table's centre (signed).
 
 use image::{ImageBuffer, Luma, Rgb};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
+
+/// Which colour scale a view uses.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Scale {
+    /// Grey levels from lo to hi.
+    Grey,
+    /// The diverging scale, zero at its centre.
+    Diverging,
+}
 
 /// The value-to-picture mapping of one view, as written to the manifest.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ViewMapping {
-    /// `grey` or `diverging`.
-    pub scale: &'static str,
+    /// Grey or diverging.
+    pub scale: Scale,
     /// Value drawn at the low end.
     pub lo: f64,
     /// Value drawn at the high end.
@@ -68,14 +78,14 @@ pub fn mapping(
     };
     if signed {
         ViewMapping {
-            scale: "diverging",
+            scale: Scale::Diverging,
             lo,
             hi,
             levels: 255,
         }
     } else {
         ViewMapping {
-            scale: "grey",
+            scale: Scale::Grey,
             lo,
             hi,
             levels: if depth16 { 65535 } else { 255 },
@@ -84,9 +94,20 @@ pub fn mapping(
 }
 
 /// Renders an `h × w` map with a mapping; `table` is the diverging colour table.
+///
+/// # Panics
+/// When `values` does not hold `h × w` samples or `table` is empty.
 pub fn render(values: &[f32], h: usize, w: usize, m: &ViewMapping, table: &[[u8; 3]]) -> ViewImage {
+    assert_eq!(
+        values.len(),
+        h * w,
+        "a {h}×{w} view needs {} samples, given {}",
+        h * w,
+        values.len()
+    );
+    assert!(!table.is_empty(), "the colour table is empty");
     let (lo, hi) = (m.lo, m.hi);
-    if m.scale == "grey" {
+    if m.scale == Scale::Grey {
         let span = if hi > lo { hi - lo } else { 1.0 };
         let d = m.levels as f64;
         let level = |v: f32| -> f64 {

@@ -1,5 +1,4 @@
-//! Stages and recipes: what is computed, in order (conv, act, pool), and the
-//! size plan of a recipe for a given input.
+//! Stages and recipes: what is computed, in order (conv, act, pool).
 
 pub mod act;
 pub mod pool;
@@ -8,4 +7,4 @@ pub mod recipefile;
 
 pub use act::Activation;
 pub use pool::{Pool, PoolKind, PoolWindow};
-pub use recipe::{Recipe, Stage, StagePlan};
+pub use recipe::{Recipe, RecipeSpec, Stage};

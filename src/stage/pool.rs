@@ -7,7 +7,9 @@
 use std::fmt;
 use std::str::FromStr;
 
-use ndarray::Array3;
+use ndarray::{Array3, ArrayView3};
+
+use crate::engine::buffers::Buffers;
 
 use crate::error::Error;
 use crate::geometry::{window_output, Axis};
@@ -89,7 +91,7 @@ impl Pool {
     /// Output (height, width) over an `h × w` map; errors state the sizes.
     pub fn output_size(&self, h: usize, w: usize) -> Result<(usize, usize), Error> {
         let ((kh, kw), (sh, sw)) = self.window_over(h, w);
-        let ctx = |e: Error| Error::Stage(format!("pool {self}: {e}"));
+        let ctx = |e: Error| e.within(&format!("pool {self}"));
         Ok((
             window_output(Axis::Rows, h, kh, sh).map_err(ctx)?,
             window_output(Axis::Cols, w, kw, sw).map_err(ctx)?,
@@ -100,35 +102,37 @@ impl Pool {
     /// whole input rows (running max or f64 sum per output column), maps in
     /// parallel; every output is computed in the same order whatever the threads.
     pub fn apply(&self, input: &Array3<f32>) -> Result<Array3<f32>, Error> {
-        self.apply_with(input, true)
+        self.apply_in(input.view(), &Buffers::new(0))
     }
 
-    /// [`Pool::apply`], maps in parallel or (inside work that is already
-    /// parallel, such as a band of a fused stage) one after another.
-    pub fn apply_with(&self, input: &Array3<f32>, parallel: bool) -> Result<Array3<f32>, Error> {
+    /// [`Pool::apply`] with its output taken from `bufs`.
+    pub(crate) fn apply_in(
+        &self,
+        input: ArrayView3<f32>,
+        bufs: &Buffers,
+    ) -> Result<Array3<f32>, Error> {
         use rayon::prelude::*;
         let (c, h, w) = input.dim();
         let (oh, ow) = self.output_size(h, w)?;
-        let ((kh, kw), (sh, sw)) = self.window_over(h, w);
         let standard = input.as_standard_layout();
         let data = standard.as_slice().expect("standard layout");
         // Every output is written below.
-        let mut out = crate::engine::scratch(c * oh * ow);
-        let kind = self.kind;
-        let one = |(ch, dst): (usize, &mut [f32])| {
-            let map = &data[ch * h * w..(ch + 1) * h * w];
-            match kind {
-                PoolKind::Max => max_rows(map, w, (kh, kw), (sh, sw), dst, ow),
-                PoolKind::Mean => mean_rows(map, w, (kh, kw), (sh, sw), dst, ow),
-            }
-        };
-        if parallel {
-            out.par_chunks_mut(oh * ow).enumerate().for_each(one);
-        } else {
-            out.chunks_mut(oh * ow).enumerate().for_each(one);
+        let mut out = bufs.scratch(c * oh * ow);
+        out.par_chunks_mut(oh * ow)
+            .zip(data.par_chunks(h * w))
+            .for_each(|(dst, map)| self.pool_map(map, w, dst, ow));
+        Ok(Array3::from_shape_vec((c, oh, ow), out).expect("sized from the output size"))
+    }
+
+    /// Pools one map, `w` samples wide, into `dst`: as many output rows of `ow`
+    /// samples as `dst` holds, output row y from the map's rows y·s … y·s + k − 1.
+    pub(crate) fn pool_map(&self, map: &[f32], w: usize, dst: &mut [f32], ow: usize) {
+        let h = map.len() / w.max(1);
+        let ((kh, kw), (sh, sw)) = self.window_over(h, w);
+        match self.kind {
+            PoolKind::Max => max_rows(map, w, (kh, kw), (sh, sw), dst, ow),
+            PoolKind::Mean => mean_rows(map, w, (kh, kw), (sh, sw), dst, ow),
         }
-        Array3::from_shape_vec((c, oh, ow), out)
-            .map_err(|e| Error::Stage(format!("pool output: {e}")))
     }
 }
 

@@ -38,20 +38,11 @@ use crate::border::PadMode;
 use crate::engine::{ConvOptions, ConvStage};
 use crate::error::Error;
 use crate::geometry::{Extent, PadWidth};
-use crate::io::read::ReadOptions;
-use crate::kernel::bankfile::{line_col, toml_message};
+use crate::image_io::ReadOptions;
+use crate::kernel::bankfile::{line_col, toml_error};
 use crate::kernel::builtin::resolve_bank;
 use crate::kernel::Op;
-use crate::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, Stage};
-
-/// A recipe with its input handling.
-#[derive(Debug, Clone, PartialEq)]
-pub struct RecipeSpec {
-    /// How images are read.
-    pub input: ReadOptions,
-    /// The stages.
-    pub recipe: Recipe,
-}
+use crate::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, RecipeSpec, Stage};
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -115,18 +106,6 @@ struct StageIn {
     size: Option<PoolSizeIn>,
 }
 
-impl RecipeSpec {
-    /// The recipe to run on an image with these channel names: in `split` colour
-    /// mode the first conv stage's kernels are spread over the channels
-    /// ([`Recipe::split_over`]), otherwise the recipe as it is.
-    pub fn recipe_for(&self, channel_names: &[String]) -> Result<Recipe, Error> {
-        match self.input.color {
-            crate::io::read::ColorMode::Split => self.recipe.split_over(channel_names),
-            _ => Ok(self.recipe.clone()),
-        }
-    }
-}
-
 /// Resolves a `conv = "…"` bank named in a recipe: a path relative to the
 /// recipe's folder when it names a file there, else as `--bank` does.
 pub fn resolve_bank_near(
@@ -144,11 +123,16 @@ pub fn resolve_bank_near(
 
 /// Parses a recipe; `origin` names the file in messages and locates relative banks.
 pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
-    let err = |m: String| Error::File {
-        path: origin.to_path_buf(),
-        message: m,
+    let located = |at: Option<(usize, usize)>, message: String| Error::Recipe {
+        file: Some(origin.to_path_buf()),
+        at,
+        message,
     };
-    let file: FileIn = toml::from_str(text).map_err(|e| err(toml_message(text, &e)))?;
+    let err = |m: String| located(None, m);
+    let file: FileIn = toml::from_str(text).map_err(|e| {
+        let (place, message) = toml_error(text, &e);
+        located(place, message)
+    })?;
     let mut input = ReadOptions::default();
     if let Some(i) = file.input {
         if let Some(c) = i.color {
@@ -178,8 +162,8 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
     let dir = origin.parent();
     let mut stages = Vec::with_capacity(file.stage.len());
     for (i, st) in file.stage.into_iter().enumerate() {
-        let (l, c) = line_col(text, st.span().start);
-        let at = |m: String| err(format!("stage {} (line {l}, column {c}): {m}", i + 1));
+        let place = Some(line_col(text, st.span().start));
+        let at = |m: String| located(place, format!("stage {}: {m}", i + 1));
         let s = st.into_inner();
         let kinds = [s.conv.is_some(), s.act.is_some(), s.pool.is_some()];
         if kinds.iter().filter(|k| **k).count() != 1 {

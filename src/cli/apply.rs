@@ -1,0 +1,111 @@
+//! `tapmap apply`: flags → [`ApplyJob`] → the summary line and exit status.
+
+use clap::Args;
+
+use tapmap::error::Error;
+use tapmap::jobs::shard::{resolve, ShardSpec};
+use tapmap::jobs::{run_apply, ApplyJob, Save, Stop, ViewOptions};
+
+use super::args::{parse_depth, parse_range, thread_count, RunArgs, StageArgs};
+use super::{command_line, status, watch_stop_signals, Terminal};
+
+pub const AFTER_HELP: &str = "Examples:\n  \
+    tapmap apply --recipe kernels/line-a-edges.recipe.toml --out runs/night sample_data\n  \
+    tapmap apply --bank edges --white 4095 --save all --out runs/s1 'captures/s1/**/*.png'\n  \
+    tapmap apply --bank gaussian:sigma=2 --pad reflect --stride 2 --out blur tile.tif\n  \
+    tapmap apply --bank my-filters.toml --color rgb --act relu --pool max --pool-size 2 --out fm photos/\n\n\
+    Outputs mirror each input's path below its folder or pattern root:\n  \
+    OUT/maps/P.npy (float32 C×H×W, numpy.load), OUT/views/P/NN-name.png, OUT/sheets/P.png,\n  \
+    OUT/tiff/P/NN-name.tif, OUT/stats.csv, OUT/images.csv, OUT/manifest.json.";
+
+#[derive(Args)]
+pub struct ApplyArgs {
+    #[command(flatten)]
+    stage: StageArgs,
+    #[command(flatten)]
+    io: RunArgs,
+    /// What to write, comma-separated: maps, tiff, views, sheets, stats, manifest, or all.
+    /// images.csv is always written.
+    #[arg(long, default_value = "maps,views,stats,manifest", value_name = "LIST")]
+    save: Save,
+    /// Fixed value range LO,HI for every view [default: per map].
+    #[arg(long, value_parser = parse_range, value_name = "LO,HI", allow_hyphen_values = true)]
+    view_range: Option<(f32, f32)>,
+    /// Bits per grey view sample: 8 or 16.
+    #[arg(long, default_value_t = 8, value_parser = parse_depth, value_name = "BITS")]
+    view_depth: u8,
+    /// Threshold T for the above_fraction column of stats.csv (fraction of samples > T).
+    #[arg(long, value_name = "T", allow_hyphen_values = true)]
+    threshold: Option<f32>,
+    /// Images processed at once, and threads [default: all cores].
+    #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    jobs: Option<u32>,
+    /// Take up a run where it stopped: inputs whose outputs are in place and whose
+    /// journal entry matches (same file contents, recipe, banks, options, version)
+    /// are not redone; everything else is.
+    #[arg(long)]
+    resume: bool,
+    /// Run part K of N (1 ≤ K ≤ N) of the sorted inputs, into OUT/shard-K-of-N;
+    /// `auto` takes K and N from a Slurm job array, `auto/N` from a Kubernetes
+    /// indexed job (JOB_COMPLETION_INDEX) with N completions. Then `tapmap merge OUT`.
+    #[arg(long, value_name = "K/N|auto|auto/N")]
+    shard: Option<ShardSpec>,
+}
+
+pub fn run(a: ApplyArgs) -> Result<i32, Error> {
+    let spec = a.stage.spec()?;
+    let stop = Stop::new();
+    let job = ApplyJob {
+        spec,
+        engine: a.stage.engine,
+        out_dir: a.io.out.clone(),
+        inputs: a.io.inputs,
+        save: a.save,
+        view: ViewOptions {
+            range: a.view_range,
+            depth16: a.view_depth == 16,
+        },
+        threshold: a.threshold,
+        jobs: thread_count(a.jobs),
+        command_line: command_line(),
+        shard: a
+            .shard
+            .map(|s| resolve(s, &|k| std::env::var(k).ok()))
+            .transpose()?,
+        resume: a.resume,
+        stop: stop.clone(),
+    };
+    watch_stop_signals(&stop)?;
+    let summary = run_apply(&job, &Terminal::new(a.io.quiet, "images"))?;
+    let signal = summary.stopped_by;
+    if !a.io.quiet || summary.failed > 0 || signal.is_some() {
+        let rate = if summary.seconds > 0.0 {
+            (summary.processed + summary.failed - summary.resumed) as f64 / summary.seconds
+        } else {
+            0.0
+        };
+        let mut extra = String::new();
+        if a.resume {
+            extra += &format!(", {} taken from the earlier run", summary.resumed);
+        }
+        if let Some(sig) = signal {
+            extra += &format!(
+                ", stopped by signal {sig} with {} not started (finish with --resume)",
+                summary.not_run
+            );
+        }
+        eprintln!(
+            "tapmap: {} processed, {} failed{extra}, {:.2} s ({rate:.1} images/s); {} files in {} (see images.csv{})",
+            summary.processed,
+            summary.failed,
+            summary.seconds,
+            summary.files,
+            summary.dir.display(),
+            if a.save.manifest { ", manifest.json" } else { "" }
+        );
+    }
+    if let Some(sig) = signal {
+        return Ok(128 + sig);
+    }
+    Ok(status(summary.failed))
+}

@@ -1,0 +1,174 @@
+//! `tapmap bank …`: the built-in kernels, bank files and imported weights.
+
+use std::path::PathBuf;
+
+use clap::Subcommand;
+
+use tapmap::error::Error;
+use tapmap::kernel::bankfile::bank_to_toml;
+use tapmap::kernel::builtin::{bank_from_specs, resolve_bank};
+use tapmap::kernel::import::Layout;
+use tapmap::kernel::Op;
+
+use super::args::{parse_floats, Floats};
+use super::EXIT_OK;
+
+#[derive(Subcommand)]
+pub enum BankCommand {
+    /// List the built-in kernel families with their parameters, and the shipped banks.
+    List,
+    /// Print a bank's kernels: taps, sum, L1 norm, rank and factors, symmetry.
+    #[command(
+        after_help = "Examples:\n  tapmap bank show edges\n  tapmap bank show gaussian:sigma=1,radius=2\n  tapmap bank show my-bank.toml"
+    )]
+    Show {
+        /// A bank file, a shipped bank, or families joined with '+'.
+        #[arg(value_name = "NAME|FILE")]
+        bank: String,
+    },
+    /// Import trained weights (.npy, .npz, safetensors) as a bank file.
+    #[command(after_help = "Examples:\n  \
+        tapmap bank import sample_data/learned/first-layer.npy -o learned.toml\n  \
+        tapmap bank import model.safetensors --tensor conv1.weight --bias conv1.bias --mean 0.485,0.456,0.406 --std 0.229,0.224,0.225 -o conv1.toml\n  \
+        tapmap bank import weights.npz --tensor w --layout hwio -o w.toml")]
+    Import {
+        /// The weight file.
+        #[arg(value_name = "FILE")]
+        file: PathBuf,
+        /// Weight tensor (needed when the file holds several).
+        #[arg(long, value_name = "NAME")]
+        tensor: Option<String>,
+        /// Bias tensor (1-D, one value per output channel).
+        #[arg(long, value_name = "NAME")]
+        bias: Option<String>,
+        /// Axis order: oihw (out×in×kh×kw) or hwio (kh×kw×in×out).
+        #[arg(long, default_value = "oihw")]
+        layout: Layout,
+        /// Per-channel mean of the training normalisation, in [0,1] units.
+        #[arg(long, value_parser = parse_floats, value_name = "M,...", allow_hyphen_values = true)]
+        mean: Option<Floats>,
+        /// Per-channel std of the training normalisation, in [0,1] units.
+        #[arg(long, value_parser = parse_floats, value_name = "S,...")]
+        std: Option<Floats>,
+        /// Op to declare (network layers compute correlate).
+        #[arg(long, default_value = "correlate")]
+        op: Op,
+        /// Bank file to write.
+        #[arg(long, short = 'o', value_name = "FILE")]
+        out: PathBuf,
+    },
+    /// Draw a bank's taps as a sheet (PNG), one enlarged cell per kernel.
+    #[command(
+        after_help = "Examples:\n  tapmap bank draw edges -o edges.png\n  tapmap bank draw sample_data/learned/first-layer.safetensors -o learned.png"
+    )]
+    Draw {
+        /// A bank file, weight file, shipped bank, or families joined with '+'.
+        #[arg(value_name = "NAME|FILE")]
+        bank: String,
+        /// PNG to write.
+        #[arg(long, short = 'o', value_name = "FILE")]
+        out: PathBuf,
+    },
+    /// Write a bank file from built-in families.
+    #[command(after_help = "Examples:\n  \
+        tapmap bank make sobel-x sobel-y -o edges.toml\n  \
+        tapmap bank make gaussian sigma=2 radius=6 -o blur.toml\n  \
+        tapmap bank make gabor:theta=0 gabor:theta=90 --name cracks -o cracks.toml")]
+    Make {
+        /// Families with parameters: FAMILY[:KEY=VALUE,...]; a lone KEY=VALUE applies to the family before it.
+        #[arg(required = true, value_name = "SPEC")]
+        specs: Vec<String>,
+        /// File to write.
+        #[arg(long, short = 'o', value_name = "FILE")]
+        out: PathBuf,
+        /// Bank name (default: the file stem).
+        #[arg(long)]
+        name: Option<String>,
+        /// Op the taps are meant for.
+        #[arg(long, default_value = "correlate")]
+        op: Op,
+    },
+}
+
+pub fn run(cmd: BankCommand) -> Result<i32, Error> {
+    match cmd {
+        BankCommand::Import {
+            file,
+            tensor,
+            bias,
+            layout,
+            mean,
+            std,
+            op,
+            out,
+        } => {
+            let opts = tapmap::kernel::import::ImportOptions {
+                tensor,
+                bias,
+                layout,
+                mean: mean.map(|f| f.0),
+                std: std.map(|f| f.0),
+                op: Some(op),
+            };
+            let bank = tapmap::kernel::import::import_bank(&file, &opts)?;
+            let text = bank_to_toml(&bank)?;
+            tapmap::image_io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
+            let k = &bank.kernels[0];
+            println!(
+                "wrote {} ({} kernels of {}×{}×{}, op {}{})",
+                out.display(),
+                bank.kernels.len(),
+                k.channels(),
+                k.rows,
+                k.cols,
+                bank.op,
+                if bank.normalize.is_some() {
+                    ", with input normalisation"
+                } else {
+                    ""
+                }
+            );
+            Ok(EXIT_OK)
+        }
+        BankCommand::Draw { bank, out } => {
+            let b = resolve_bank(&bank)?;
+            let img = tapmap::render::taps::draw_bank(&b);
+            tapmap::render::write_png(
+                &out,
+                img.as_raw(),
+                img.width(),
+                img.height(),
+                image::ExtendedColorType::Rgb8,
+            )?;
+            println!("wrote {} ({} kernels)", out.display(), b.kernels.len());
+            Ok(EXIT_OK)
+        }
+        BankCommand::List => {
+            print!("{}", tapmap::kernel::describe::family_list());
+            Ok(EXIT_OK)
+        }
+        BankCommand::Show { bank } => {
+            print!(
+                "{}",
+                tapmap::kernel::describe::bank_details(&resolve_bank(&bank)?)
+            );
+            Ok(EXIT_OK)
+        }
+        BankCommand::Make {
+            specs,
+            out,
+            name,
+            op,
+        } => {
+            let name = name.unwrap_or_else(|| {
+                out.file_stem()
+                    .map_or_else(|| "bank".into(), |s| s.to_string_lossy().into_owned())
+            });
+            let bank = bank_from_specs(&specs, &name, op)?;
+            let text = bank_to_toml(&bank)?;
+            tapmap::image_io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
+            println!("wrote {} ({} kernels)", out.display(), bank.kernels.len());
+            Ok(EXIT_OK)
+        }
+    }
+}

@@ -1,0 +1,325 @@
+//! The `apply` job: a recipe over many images.
+//!
+//! `jobs` worker threads take images from a shared counter, one at a time each,
+//! so at most `jobs` images are in memory whatever the number of inputs. Each
+//! worker reads an input once, decodes it, runs the plan for its shape (made
+//! once per shape and reused, [`crate::pipeline::Plan`]) and writes its
+//! outputs; the engine inside spreads each image's rows over the job's own
+//! thread pool, so one large image also uses every core. Results are gathered
+//! by input index, so tables come out in input order (sorted by relative path,
+//! then channel) whatever order the threads finish in.
+//!
+//! **Journal and resume.** Each input's finished result (its table rows and
+//! manifest entry) is appended to `journal.jsonl` ([`journal`]) as soon as its
+//! files are in place, tagged with a digest of everything that decides the
+//! outputs ([`ApplyJob::digest`]). `--resume` reuses a journal entry when the
+//! tag matches, the input's SHA-256 is unchanged and every file it lists is
+//! there with its recorded size; everything else is done again. At the end the
+//! journal is rewritten to hold exactly this run's results, in table order.
+//!
+//! **Stopping.** When a stop is requested ([`ApplyJob::stop`], set by the
+//! command line on SIGINT or SIGTERM), workers finish the images in flight,
+//! take no new ones, and the tables and manifest are written for what is done.
+
+pub mod journal;
+mod outputs;
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::Mutex;
+use std::time::{Instant, SystemTime};
+
+use crate::digest::sha256_hex;
+use crate::engine::Engine;
+use crate::error::Error;
+use crate::jobs::inputs::{expand_inputs, InputItem};
+use crate::jobs::manifest::{
+    recipe_record, views_record, write_manifest, Interrupted, JobRecord, Manifest, SummaryRecord,
+    MANIFEST_FORMAT, MANIFEST_VERSION,
+};
+use crate::jobs::shard::Shard;
+use crate::jobs::tables::{write_tables, Finished};
+use crate::jobs::{for_each_parallel, thread_pool, Observer, Save, Stop, ViewOptions};
+use crate::render::colormap;
+use crate::stage::RecipeSpec;
+
+use crate::pipeline::PlanCache;
+pub use journal::{read_journal, JOURNAL};
+use outputs::{process, ImageContext};
+
+/// Everything an `apply` run needs, checked before any image is read.
+#[derive(Debug, Clone)]
+pub struct ApplyJob {
+    /// Input handling and stages.
+    pub spec: RecipeSpec,
+    /// Conv strategy.
+    pub engine: Engine,
+    /// Output folder.
+    pub out_dir: PathBuf,
+    /// Files, folders and patterns as given.
+    pub inputs: Vec<PathBuf>,
+    /// What to write.
+    pub save: Save,
+    /// How to draw views.
+    pub view: ViewOptions,
+    /// Threshold for the `above_fraction` statistic.
+    pub threshold: Option<f32>,
+    /// Threads of the job's pool, and images in flight at once.
+    pub jobs: usize,
+    /// The command line, for the manifest.
+    pub command_line: Vec<String>,
+    /// Run only this part of the inputs, into its own subfolder of `out_dir`.
+    pub shard: Option<Shard>,
+    /// Reuse results of an earlier run of the same job (see the module header).
+    pub resume: bool,
+    /// Asked to stop: finish what is in flight, write the tables, return.
+    pub stop: Stop,
+}
+
+/// What a finished run did.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Summary {
+    /// Inputs processed without error.
+    pub processed: usize,
+    /// Inputs that failed.
+    pub failed: usize,
+    /// Files written (maps, views, sheets, TIFFs, tables, manifest).
+    pub files: usize,
+    /// Wall time in seconds.
+    pub seconds: f64,
+    /// Inputs whose results were taken over from an earlier run (`--resume`).
+    pub resumed: usize,
+    /// Inputs not started because a stop was requested.
+    pub not_run: usize,
+    /// The signal that stopped the run, if one did.
+    pub stopped_by: Option<i32>,
+    /// The folder the run wrote into.
+    pub dir: PathBuf,
+}
+
+impl ApplyJob {
+    /// A job with the default outputs, views and options, one thread per core.
+    pub fn new(spec: RecipeSpec, out_dir: impl Into<PathBuf>, inputs: Vec<PathBuf>) -> Self {
+        ApplyJob {
+            spec,
+            engine: Engine::Auto,
+            out_dir: out_dir.into(),
+            inputs,
+            save: Save::default(),
+            view: ViewOptions::default(),
+            threshold: None,
+            jobs: std::thread::available_parallelism().map_or(1, |n| n.get()),
+            command_line: Vec::new(),
+            shard: None,
+            resume: false,
+            stop: Stop::new(),
+        }
+    }
+
+    /// The folder this run writes into: `out_dir`, or its shard subfolder.
+    pub fn run_dir(&self) -> PathBuf {
+        match self.shard {
+            Some(s) => self.out_dir.join(s.folder()),
+            None => self.out_dir.clone(),
+        }
+    }
+
+    /// What decides the outputs, as the manifest records it.
+    pub fn record(&self) -> JobRecord {
+        JobRecord {
+            engine: self.engine.name().into(),
+            recipe: recipe_record(&self.spec),
+            save: self.save.to_string(),
+            threshold: self.threshold,
+            views: views_record(self.view.range),
+        }
+    }
+
+    /// Digest of everything that decides an input's outputs: tool version, the
+    /// job record (recipe with bank texts and digests, outputs, threshold, view
+    /// rules, engine) and the view depth. Journal entries with another digest
+    /// are never reused.
+    pub fn digest(&self) -> String {
+        let key = serde_json::json!({
+            "version": env!("CARGO_PKG_VERSION"),
+            "job": self.record(),
+            "view_depth16": self.view.depth16,
+        });
+        sha256_hex(key.to_string().as_bytes())
+    }
+}
+
+/// Runs the job. Set-up problems are `Err` before any image is read; a bad
+/// image is recorded, reported to `obs` and skipped.
+pub fn run_apply(job: &ApplyJob, obs: &dyn Observer) -> Result<Summary, Error> {
+    job.spec.validate()?;
+    let mut items = expand_inputs(&job.inputs, &job.out_dir)?;
+    if let Some(s) = job.shard {
+        items.retain(|i| s.holds(&i.rel_string()));
+    }
+    run_items(job, items, obs)
+}
+
+/// Removes temporary files (`.tapmap-*.part`) a killed run left in `dir`, without
+/// entering other runs' shard folders.
+fn remove_leftovers(dir: &Path) {
+    let walker = walkdir::WalkDir::new(dir).into_iter().filter_entry(|e| {
+        e.depth() == 0
+            || !(e.file_type().is_dir()
+                && Shard::from_folder(&e.file_name().to_string_lossy()).is_some())
+    });
+    for e in walker.flatten() {
+        let name = e.file_name().to_string_lossy();
+        if e.file_type().is_file() && name.starts_with(".tapmap-") && name.ends_with(".part") {
+            let _ = std::fs::remove_file(e.path());
+        }
+    }
+}
+
+/// Whether an earlier result can stand for `item` (see the module header).
+fn still_valid(prev: &Finished, item: &InputItem, dir: &Path, spec: &RecipeSpec) -> bool {
+    prev.ok()
+        && item.problem.is_none()
+        && prev.entry.outputs.iter().all(|o| {
+            std::fs::metadata(dir.join(&o.path)).is_ok_and(|m| m.is_file() && m.len() == o.bytes)
+        })
+        && prev.image.sha256.is_some()
+        && crate::image_io::read_input(&item.source, &spec.input.limits)
+            .ok()
+            .map(|b| sha256_hex(&b))
+            == prev.image.sha256
+}
+
+/// Runs the job over inputs already listed (and sharded): what [`run_apply`] does
+/// after listing.
+pub fn run_items(
+    job: &ApplyJob,
+    items: Vec<InputItem>,
+    obs: &dyn Observer,
+) -> Result<Summary, Error> {
+    let started = SystemTime::now();
+    let clock = Instant::now();
+    job.spec.validate()?;
+    let pool = thread_pool(job.jobs)?;
+    let dir = job.run_dir();
+    std::fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, e))?;
+    tempfile::Builder::new()
+        .prefix(".tapmap-probe")
+        .tempfile_in(&dir)
+        .map(drop)
+        .map_err(|e| Error::io(&dir, e))?;
+    remove_leftovers(&dir);
+    let key = job.digest();
+    let journal_path = dir.join(JOURNAL);
+    let earlier: HashMap<String, Finished> = if job.resume {
+        read_journal(&journal_path, Some(&key))?
+            .into_iter()
+            .map(|f| (f.path().to_string(), f))
+            .collect()
+    } else {
+        HashMap::new()
+    };
+    let journal = journal::Journal::open(&dir, &key, job.resume)?;
+
+    let table = colormap::table();
+    let plans = PlanCache::default();
+    let cx = ImageContext {
+        spec: &job.spec,
+        engine: job.engine,
+        save: job.save,
+        view: job.view,
+        threshold: job.threshold,
+        dir: &dir,
+        table: &table,
+        plans: &plans,
+    };
+    obs.begin(items.len());
+    let results: Mutex<Vec<Option<Finished>>> = Mutex::new(vec![None; items.len()]);
+    let resumed = AtomicUsize::new(0);
+    let journal_error: Mutex<Option<Error>> = Mutex::new(None);
+    for_each_parallel(&items, job.jobs, &job.stop, |i, item| {
+        let done = match earlier.get(&item.rel_string()) {
+            Some(prev) if still_valid(prev, item, &dir, &job.spec) => {
+                resumed.fetch_add(1, Ordering::Relaxed);
+                prev.clone()
+            }
+            _ => {
+                let done = pool.install(|| process(&cx, item));
+                if let Some(problem) = &done.image.error {
+                    obs.input_failed(&Error::decode(&item.source, problem.clone()));
+                }
+                if let Err(e) = journal.append(&done) {
+                    journal_error
+                        .lock()
+                        .unwrap_or_else(|p| p.into_inner())
+                        .get_or_insert(e);
+                }
+                done
+            }
+        };
+        results.lock().unwrap_or_else(|p| p.into_inner())[i] = Some(done);
+        obs.advance();
+    });
+    obs.end();
+    if let Some(e) = journal_error
+        .into_inner()
+        .unwrap_or_else(|p| p.into_inner())
+    {
+        return Err(e);
+    }
+    let all = results.into_inner().unwrap_or_else(|p| p.into_inner());
+    let not_run = all.iter().filter(|r| r.is_none()).count();
+    let done: Vec<Finished> = all.into_iter().flatten().collect();
+    let failed = done.iter().filter(|d| !d.ok()).count();
+    // The journal now holds exactly this run's results, in table order.
+    journal.rewrite(&done)?;
+
+    let resumed = resumed.into_inner();
+    let signal = job.stop.requested();
+    let mut files = write_tables(&dir, &done, job.save.stats)?;
+    let summary = SummaryRecord {
+        inputs: done.len(),
+        processed: done.len() - failed,
+        failed,
+    };
+    if job.save.manifest {
+        let manifest = Manifest {
+            format: MANIFEST_FORMAT.into(),
+            manifest_version: MANIFEST_VERSION,
+            tool: "tapmap".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
+            job: job.record(),
+            command_line: job.command_line.clone(),
+            started: Some(humantime::format_rfc3339_seconds(started).to_string()),
+            finished: Some(humantime::format_rfc3339_seconds(SystemTime::now()).to_string()),
+            seconds: Some(clock.elapsed().as_secs_f64()),
+            threads: Some(job.jobs),
+            summary,
+            shard: job.shard.map(|s| s.to_string()),
+            resumed: job.resume.then_some(resumed),
+            interrupted: (not_run > 0 || signal.is_some()).then_some(Interrupted {
+                signal: signal.unwrap_or(0),
+                not_run,
+            }),
+            shards: None,
+            files: files.clone(),
+            inputs: done.iter().map(|d| d.entry.clone()).collect(),
+        };
+        let bytes = write_manifest(&dir.join("manifest.json"), &manifest)?;
+        files.push(crate::jobs::manifest::FileRecord {
+            path: "manifest.json".into(),
+            bytes,
+        });
+    }
+    Ok(Summary {
+        processed: summary.processed,
+        failed,
+        files: files.len() + 1 + done.iter().map(|d| d.entry.outputs.len()).sum::<usize>(),
+        seconds: clock.elapsed().as_secs_f64(),
+        resumed,
+        not_run,
+        stopped_by: signal,
+        dir,
+    })
+}

@@ -1,0 +1,242 @@
+//! One input of an `apply` run: read once, decoded, run through the plan for
+//! its shape, and its outputs written (maps, TIFFs, views, sheet) with its
+//! statistics. A failed input leaves no outputs: what was written for it is
+//! removed.
+
+use std::path::{Path, PathBuf};
+
+use ndarray::Array3;
+
+use crate::digest::sha256_hex;
+use crate::engine::Engine;
+use crate::error::Error;
+use crate::image_io::{decode_image, read_input, LoadedImage};
+use crate::jobs::inputs::InputItem;
+use crate::jobs::manifest::{FileRecord, InputRecord, ViewRecord};
+use crate::jobs::tables::{Finished, ImageRow, StatsRow};
+use crate::jobs::{safe_name, Save, ViewOptions};
+use crate::limits::bytes_text;
+use crate::pipeline::{Plan, PlanCache};
+use crate::render::{sheet, view, write_png, write_view};
+use crate::stage::RecipeSpec;
+use crate::stats::map_stats;
+
+/// What every input of one run shares.
+pub(crate) struct ImageContext<'a> {
+    pub spec: &'a RecipeSpec,
+    pub engine: Engine,
+    pub save: Save,
+    pub view: ViewOptions,
+    pub threshold: Option<f32>,
+    /// The run's folder.
+    pub dir: &'a Path,
+    pub table: &'a [[u8; 3]],
+    pub plans: &'a PlanCache,
+}
+
+/// Processes one input; never fails as a whole: a failure is recorded in the
+/// result, which says why.
+pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
+    let mut row = ImageRow {
+        path: item.rel_string(),
+        sha256: None,
+        meta: None,
+        error: None,
+        maps_written: 0,
+    };
+    let mut entry = InputRecord {
+        path: row.path.clone(),
+        sha256: None,
+        status: "ok".into(),
+        error: None,
+        outputs: Vec::new(),
+        views: Vec::new(),
+    };
+    let mut stats = Vec::new();
+    let mut written: Vec<PathBuf> = Vec::new();
+    let result = (|| -> Result<(), Error> {
+        if let Some(p) = &item.problem {
+            return Err(Error::decode(&item.source, p.clone()));
+        }
+        let bytes = read_input(&item.source, &cx.spec.input.limits)?;
+        row.sha256 = Some(sha256_hex(&bytes));
+        let img = decode_image(&bytes, &item.source, &cx.spec.input)?;
+        drop(bytes);
+        row.meta = Some(img.meta.clone());
+        let plan = cx
+            .plans
+            .get(cx.spec, &img.channel_names, img.data.dim(), cx.engine)?;
+        let (_, h, w) = img.data.dim();
+        let need = plan.peak_bytes();
+        if need > cx.spec.input.limits.max_memory {
+            return Err(Error::Limit {
+                path: Some(item.source.clone()),
+                message: format!(
+                    "needs about {} to run the recipe on its {w}×{h} pixels, over --max-memory ({})",
+                    bytes_text(need),
+                    bytes_text(cx.spec.input.limits.max_memory)
+                ),
+            });
+        }
+        let maps = plan.run(img.data.view())?;
+        let out = write_outputs(
+            cx,
+            item,
+            &img,
+            &plan,
+            &maps,
+            &mut stats,
+            &mut entry,
+            &mut written,
+        );
+        // The maps' memory serves the plan's next image.
+        plan.give_back(maps);
+        out
+    })();
+    match result {
+        Ok(()) => {
+            row.maps_written = usize::from(cx.save.maps);
+        }
+        Err(e) => {
+            // Outputs of a failed image are removed, so no image is half there.
+            for p in &written {
+                let _ = std::fs::remove_file(p);
+            }
+            let problem = match e.path() {
+                Some(p) if p == item.source => e.problem(),
+                _ => e.to_string(),
+            };
+            entry.outputs.clear();
+            entry.views.clear();
+            entry.status = "failed".into();
+            entry.error = Some(problem.clone());
+            stats.clear();
+            row.error = Some(problem);
+        }
+    }
+    entry.sha256 = row.sha256.clone();
+    Finished {
+        image: row,
+        stats,
+        entry,
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn write_outputs(
+    cx: &ImageContext,
+    item: &InputItem,
+    img: &LoadedImage,
+    plan: &Plan,
+    maps: &Array3<f32>,
+    stats: &mut Vec<StatsRow>,
+    entry: &mut InputRecord,
+    written: &mut Vec<PathBuf>,
+) -> Result<(), Error> {
+    let out = cx.dir;
+    let (c, h, w) = maps.dim();
+    let names = plan.channel_names();
+    let nonneg = plan.non_negative(!img.meta.float);
+    let stem = item.stem_path();
+    let mut record = |path: PathBuf, entry: &mut InputRecord| -> Result<(), Error> {
+        let bytes = std::fs::metadata(&path)
+            .map_err(|e| Error::io(&path, e))?
+            .len();
+        entry.outputs.push(FileRecord {
+            path: slash(path.strip_prefix(out).unwrap_or(&path)),
+            bytes,
+        });
+        written.push(path);
+        Ok(())
+    };
+    let data = maps.as_slice().expect("plans return standard layout");
+    let plane = |k: usize| &data[k * h * w..(k + 1) * h * w];
+    let file_of = |k: usize, ext: &str| format!("{k:02}-{}.{ext}", safe_name(&names[k]));
+
+    if cx.save.maps {
+        let p = item.output_file(&out.join("maps"), "npy");
+        crate::image_io::write_npy(&p, maps.view())?;
+        record(p, entry)?;
+    }
+    if cx.save.tiff {
+        for k in 0..c {
+            let p = out.join("tiff").join(&stem).join(file_of(k, "tif"));
+            crate::image_io::write_f32_tiff(&p, plane(k), w, h)?;
+            record(p, entry)?;
+        }
+    }
+    let mut scratch = Vec::new();
+    if cx.save.stats {
+        for (k, name) in names.iter().enumerate().take(c) {
+            stats.push(StatsRow {
+                path: item.rel_string(),
+                channel: k,
+                name: name.clone(),
+                width: w,
+                height: h,
+                stats: map_stats(plane(k), cx.threshold, &mut scratch),
+            });
+        }
+    }
+    if cx.save.views || cx.save.sheets {
+        let mut cells = Vec::new();
+        if cx.save.sheets {
+            cells.push(("source".to_string(), crate::render::input_picture(img)));
+        }
+        for k in 0..c {
+            let m = view::mapping(plane(k), !nonneg[k], cx.view.range, cx.view.depth16);
+            let pic = view::render(plane(k), h, w, &m, cx.table);
+            if cx.save.views {
+                let p = out.join("views").join(&stem).join(file_of(k, "png"));
+                write_view(&p, &pic)?;
+                entry.views.push(ViewRecord {
+                    channel: k,
+                    name: names[k].clone(),
+                    file: slash(p.strip_prefix(out).unwrap_or(&p)),
+                    mapping: m.clone(),
+                });
+                record(p, entry)?;
+            }
+            if cx.save.sheets {
+                cells.push((
+                    format!("{} [{}, {}]", names[k], sig3(m.lo), sig3(m.hi)),
+                    pic.to_rgb8(),
+                ));
+            }
+        }
+        if cx.save.sheets {
+            let s = sheet::sheet(&item.rel_string(), &cells);
+            let p = item.output_file(&out.join("sheets"), "png");
+            write_png(
+                &p,
+                s.as_raw(),
+                s.width(),
+                s.height(),
+                image::ExtendedColorType::Rgb8,
+            )?;
+            record(p, entry)?;
+        }
+    }
+    Ok(())
+}
+
+/// A path with `/` separators, for the manifest.
+pub(crate) fn slash(p: &Path) -> String {
+    p.components()
+        .map(|c| c.as_os_str().to_string_lossy().into_owned())
+        .collect::<Vec<_>>()
+        .join("/")
+}
+
+/// A value with about three significant digits, for sheet labels.
+fn sig3(v: f64) -> String {
+    let a = v.abs();
+    if a == 0.0 || !a.is_finite() {
+        format!("{v}")
+    } else if (1e-3..1e4).contains(&a) {
+        let decimals = (2 - a.log10().floor() as i32).max(0) as usize;
+        format!("{v:.decimals$}")
+    } else {
+        format!("{v:.2e}")
+    }
+}

@@ -1,0 +1,202 @@
+//! The `borders` job: the border study over many images, with its tables,
+//! views and plots (see the module above for what is measured).
+//!
+//! Writes under `out`: `borders.csv` (error by distance from the edge),
+//! `bands.csv` (measured and predicted band per edge), `summary.csv` (per image
+//! and mode), `views/P/NN-channel/MODE.png`, `plots/P.png` and `plot.png`
+//! (all images).
+
+use std::path::PathBuf;
+
+use crate::border::PadMode;
+use crate::engine::Engine;
+use crate::error::Error;
+use crate::image_io::read_image;
+use crate::jobs::borders::output as bo;
+use crate::jobs::borders::study;
+use crate::jobs::inputs::expand_inputs;
+use crate::jobs::tables::{number, optional_number, write_csv};
+use crate::jobs::{thread_pool, Observer, Stop};
+use crate::stage::RecipeSpec;
+
+/// Everything a border study needs.
+#[derive(Debug, Clone)]
+pub struct BordersJob {
+    /// Input handling and stages.
+    pub spec: RecipeSpec,
+    /// Conv strategy.
+    pub engine: Engine,
+    /// Pad modes to compare (at least two, distinct).
+    pub modes: Vec<PadMode>,
+    /// Two results agree when they differ by at most this.
+    pub tolerance: f32,
+    /// With `Some(n)`: the crop study with a window `n` pixels in from every side.
+    pub crop: Option<usize>,
+    /// Output folder.
+    pub out_dir: PathBuf,
+    /// Files, folders and patterns as given.
+    pub inputs: Vec<PathBuf>,
+    /// Threads of the job's pool.
+    pub jobs: usize,
+    /// Asked to stop: finish the image in hand, write the tables, return.
+    pub stop: Stop,
+}
+
+/// What a study did.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BordersSummary {
+    /// Images studied.
+    pub studied: usize,
+    /// Images that failed.
+    pub failed: usize,
+}
+
+/// Runs the study; each image's table goes to `obs.report`.
+pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummary, Error> {
+    job.spec.validate()?;
+    if job.modes.len() < 2 {
+        return Err(Error::usage("give at least two pad modes to compare"));
+    }
+    if job.tolerance.is_nan() || job.tolerance < 0.0 {
+        return Err(Error::usage("--tolerance must be a number ≥ 0"));
+    }
+    let items = expand_inputs(&job.inputs, &job.out_dir)?;
+    let pool = thread_pool(job.jobs)?;
+    std::fs::create_dir_all(&job.out_dir).map_err(|e| Error::io(&job.out_dir, e))?;
+    let out = &job.out_dir;
+    let (mut rows, mut bands, mut summary_rows) = (Vec::new(), Vec::new(), Vec::new());
+    let mut all_curves: Vec<(PadMode, Vec<f64>, usize)> = Vec::new();
+    let (mut ok, mut failed) = (0, 0);
+    obs.begin(items.len());
+    for item in &items {
+        if job.stop.requested().is_some() {
+            break;
+        }
+        let path = item.rel_string();
+        let result = pool.install(|| -> Result<(), Error> {
+            if let Some(p) = &item.problem {
+                return Err(Error::decode(&item.source, p.clone()));
+            }
+            let img = read_image(&item.source, &job.spec.input)?;
+            let recipe = job.spec.recipe_for(&img.channel_names)?;
+            let names = recipe.channel_names(img.data.dim().0);
+            let st = study(
+                &recipe,
+                img.data.view(),
+                &names,
+                &job.modes,
+                job.tolerance,
+                job.crop,
+                job.engine,
+            )
+            .map_err(|e| e.in_file(&item.source))?;
+            let summary = bo::summarise(&st);
+            obs.report(&bo::summary_text(&path, &st, &summary));
+            let best = bo::best(&summary);
+            for (i, m) in summary.iter().enumerate() {
+                summary_rows.push(vec![
+                    path.clone(),
+                    m.mode.name().to_string(),
+                    m.band.to_string(),
+                    number(m.mean_dev),
+                    number(m.max_dev),
+                    optional_number(m.crop_mean),
+                    optional_number(m.crop_max),
+                    (Some(i) == best).to_string(),
+                ]);
+            }
+            bo::borders_rows(&path, &st, &mut rows);
+            bo::band_rows(&path, &st, &mut bands);
+            let stem = item.stem_path();
+            bo::write_difference_views(&out.join("views").join(&stem), &st, &job.modes)?;
+            let curves = bo::curves(&st);
+            let plot = item.output_file(&out.join("plots"), "png");
+            let what = if job.crop.is_some() {
+                "crop study: error against the real surroundings"
+            } else {
+                "deviation from the median of all modes"
+            };
+            bo::write_plot(
+                &plot,
+                &format!("{path}: {what}"),
+                "mean |error| (response units)",
+                &curves,
+            )?;
+            for (m, pts) in curves {
+                let pts: Vec<f64> = pts
+                    .iter()
+                    .map(|p| if p.is_finite() { *p } else { 0.0 })
+                    .collect();
+                match all_curves.iter_mut().find(|(mm, _, _)| *mm == m) {
+                    Some((_, acc, n)) => {
+                        if acc.len() < pts.len() {
+                            acc.resize(pts.len(), 0.0);
+                        }
+                        for (a, p) in acc.iter_mut().zip(&pts) {
+                            *a += p;
+                        }
+                        *n += 1;
+                    }
+                    None => all_curves.push((m, pts, 1)),
+                }
+            }
+            Ok(())
+        });
+        match result {
+            Ok(()) => ok += 1,
+            Err(e) => {
+                failed += 1;
+                obs.input_failed(&e.in_file(&item.source));
+            }
+        }
+        obs.advance();
+    }
+    obs.end();
+    write_csv(
+        &out.join("borders.csv"),
+        &[
+            "path", "study", "channel", "name", "mode", "distance", "mean_abs", "max_abs", "pixels",
+        ],
+        rows,
+    )?;
+    write_csv(
+        &out.join("bands.csv"),
+        &["path", "channel", "name", "edge", "band", "predicted"],
+        bands,
+    )?;
+    write_csv(
+        &out.join("summary.csv"),
+        &[
+            "path",
+            "mode",
+            "band",
+            "mean_dev",
+            "max_dev",
+            "crop_mean",
+            "crop_max",
+            "best",
+        ],
+        summary_rows,
+    )?;
+    if !all_curves.is_empty() {
+        let curves: Vec<(PadMode, Vec<f64>)> = all_curves
+            .into_iter()
+            .map(|(m, acc, n)| (m, acc.into_iter().map(|v| v / n as f64).collect()))
+            .collect();
+        let what = if job.crop.is_some() {
+            "all images: error against the real surroundings"
+        } else {
+            "all images: deviation from the median of all modes"
+        };
+        bo::write_plot(
+            &out.join("plot.png"),
+            what,
+            "mean |error| (response units)",
+            &curves,
+        )?;
+    }
+    Ok(BordersSummary {
+        studied: ok,
+        failed,
+    })
+}

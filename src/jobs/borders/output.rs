@@ -1,0 +1,536 @@
+//! What the border study writes: `borders.csv` (error by distance from the edge),
+//! `bands.csv` (measured and predicted band per edge), `summary.csv` and the
+//! stdout table, difference views with the band outlined, and plots of error
+//! against distance, one line per mode.
+
+use std::fmt::Write as _;
+use std::path::Path;
+
+use image::{Rgb, RgbImage};
+use plotters::prelude::*;
+
+use crate::border::PadMode;
+use crate::error::Error;
+use crate::jobs::borders::{ChannelStudy, DistanceStat, ImageStudy};
+use crate::jobs::tables::number;
+use crate::render::sheet::draw_text;
+use crate::render::write_png;
+
+/// Colour and dash of each mode's line in plots; tapmap's own choice.
+pub fn mode_style(m: PadMode) -> ([u8; 3], bool) {
+    match m {
+        PadMode::Zero => ([70, 70, 78], false),
+        PadMode::Replicate => ([22, 108, 128], false),
+        PadMode::Reflect => ([176, 86, 24], true),
+        PadMode::Symmetric => ([120, 64, 150], false),
+        PadMode::Wrap => ([96, 128, 24], true),
+    }
+}
+
+/// One row of the per-image summary.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ModeSummary {
+    /// The mode.
+    pub mode: PadMode,
+    /// Its band (largest over channels and edges), output pixels.
+    pub band: usize,
+    /// Mean deviation from the median inside the band, averaged over channels.
+    pub mean_dev: f64,
+    /// Largest deviation from the median.
+    pub max_dev: f64,
+    /// Crop study: mean error against the truth inside the predicted band.
+    pub crop_mean: Option<f64>,
+    /// Crop study: largest error against the truth.
+    pub crop_max: Option<f64>,
+}
+
+fn inside(v: &[DistanceStat], limit: usize) -> (f64, f64) {
+    let (mut sum, mut n, mut max) = (0.0, 0usize, 0.0f64);
+    for s in v.iter().take(limit) {
+        sum += s.sum;
+        n += s.count;
+        max = max.max(s.max);
+    }
+    (if n == 0 { 0.0 } else { sum / n as f64 }, max)
+}
+
+/// The per-mode summary of one image.
+pub fn summarise(st: &ImageStudy) -> Vec<ModeSummary> {
+    let modes: Vec<PadMode> = st
+        .channels
+        .first()
+        .map(|c| c.modes.iter().map(|m| m.0).collect())
+        .unwrap_or_default();
+    modes
+        .iter()
+        .enumerate()
+        .map(|(i, &mode)| {
+            let (mut band, mut mean, mut max) = (0usize, 0.0, 0.0f64);
+            let (mut cmean, mut cmax) = (0.0, 0.0f64);
+            for ch in &st.channels {
+                let limit = ch.band.iter().copied().max().unwrap_or(0);
+                let (m, x) = inside(&ch.modes[i].2, limit);
+                band = band.max(ch.modes[i].1);
+                mean += m;
+                max = max.max(x);
+                if let Some((_, v)) = ch.crop.get(i) {
+                    let plimit = ch.predicted.iter().copied().max().unwrap_or(0).max(1);
+                    let (m, x) = inside(v, plimit);
+                    cmean += m;
+                    cmax = cmax.max(x);
+                }
+            }
+            let n = st.channels.len().max(1) as f64;
+            let has_crop = st.channels.first().is_some_and(|c| !c.crop.is_empty());
+            ModeSummary {
+                mode,
+                band,
+                mean_dev: mean / n,
+                max_dev: max,
+                crop_mean: has_crop.then_some(cmean / n),
+                crop_max: has_crop.then_some(cmax),
+            }
+        })
+        .collect()
+}
+
+/// Index of the best mode: lowest crop error when there is a crop study,
+/// otherwise the lowest deviation from the median (closest to the consensus).
+pub fn best(summary: &[ModeSummary]) -> Option<usize> {
+    let key = |s: &ModeSummary| s.crop_mean.unwrap_or(s.mean_dev);
+    (0..summary.len()).min_by(|a, b| key(&summary[*a]).total_cmp(&key(&summary[*b])))
+}
+
+/// The stdout table for one image.
+pub fn summary_text(path: &str, st: &ImageStudy, summary: &[ModeSummary]) -> String {
+    let mut s = String::new();
+    let predicted = st
+        .channels
+        .iter()
+        .flat_map(|c| c.predicted)
+        .max()
+        .unwrap_or(0);
+    let measured = st.channels.iter().flat_map(|c| c.band).max().unwrap_or(0);
+    let _ = writeln!(
+        s,
+        "{path}: {} channel(s), band {measured} px measured, {predicted} px predicted by the receptive field",
+        st.shape.0
+    );
+    let crop = summary.first().is_some_and(|m| m.crop_mean.is_some());
+    let _ = write!(
+        s,
+        "  {:<10} {:>5} {:>12} {:>12}",
+        "mode", "band", "mean dev", "max dev"
+    );
+    if crop {
+        let _ = write!(s, " {:>12} {:>12}", "crop mean", "crop max");
+    }
+    s.push('\n');
+    let b = best(summary);
+    for (i, m) in summary.iter().enumerate() {
+        let _ = write!(
+            s,
+            "  {:<10} {:>5} {:>12.5e} {:>12.5e}",
+            m.mode.name(),
+            m.band,
+            m.mean_dev,
+            m.max_dev
+        );
+        if let (Some(a), Some(x)) = (m.crop_mean, m.crop_max) {
+            let _ = write!(s, " {a:>12.5e} {x:>12.5e}");
+        }
+        if Some(i) == b {
+            s.push_str(if crop {
+                "  <- closest to the real surroundings"
+            } else {
+                "  <- closest to the consensus"
+            });
+        }
+        s.push('\n');
+    }
+    if st.crop_truth_clean == Some(false) {
+        s.push_str("  note: the crop is narrower than the predicted band, so the truth itself was touched by padding\n");
+    }
+    s
+}
+
+/// Rows of `borders.csv` for one image.
+pub fn borders_rows(path: &str, st: &ImageStudy, out: &mut Vec<Vec<String>>) {
+    for (k, ch) in st.channels.iter().enumerate() {
+        let limit = report_limit(ch);
+        let mut push = |study: &str, mode: PadMode, v: &[DistanceStat]| {
+            for (d, s) in v.iter().enumerate().take(limit) {
+                out.push(vec![
+                    path.to_string(),
+                    study.to_string(),
+                    k.to_string(),
+                    ch.name.clone(),
+                    mode.name().to_string(),
+                    d.to_string(),
+                    number(s.mean()),
+                    number(s.max),
+                    s.count.to_string(),
+                ]);
+            }
+        };
+        for (m, _, v) in &ch.modes {
+            push("modes", *m, v);
+        }
+        for (m, v) in &ch.crop {
+            push("crop", *m, v);
+        }
+    }
+}
+
+/// Distances reported: a few beyond the wider of the measured and predicted bands.
+fn report_limit(ch: &ChannelStudy) -> usize {
+    let b = ch
+        .band
+        .iter()
+        .chain(&ch.predicted)
+        .copied()
+        .max()
+        .unwrap_or(0);
+    b + 3
+}
+
+/// Rows of `bands.csv` for one image.
+pub fn band_rows(path: &str, st: &ImageStudy, out: &mut Vec<Vec<String>>) {
+    for (k, ch) in st.channels.iter().enumerate() {
+        for (e, edge) in ["top", "bottom", "left", "right"].iter().enumerate() {
+            out.push(vec![
+                path.to_string(),
+                k.to_string(),
+                ch.name.clone(),
+                edge.to_string(),
+                ch.band[e].to_string(),
+                ch.predicted[e].to_string(),
+            ]);
+        }
+    }
+}
+
+const OUTLINE_MEASURED: Rgb<u8> = Rgb([230, 150, 40]);
+const OUTLINE_PREDICTED: Rgb<u8> = Rgb([40, 170, 190]);
+
+fn outline(img: &mut RgbImage, inset: [usize; 4], colour: Rgb<u8>) {
+    let (w, h) = (img.width() as usize, img.height() as usize);
+    let [t, b, l, r] = inset;
+    if t + b >= h || l + r >= w || inset == [0; 4] {
+        return;
+    }
+    let (y0, y1, x0, x1) = (t, h - 1 - b, l, w - 1 - r);
+    for x in x0..=x1 {
+        img.put_pixel(x as u32, y0 as u32, colour);
+        img.put_pixel(x as u32, y1 as u32, colour);
+    }
+    for y in y0..=y1 {
+        img.put_pixel(x0 as u32, y as u32, colour);
+        img.put_pixel(x1 as u32, y as u32, colour);
+    }
+}
+
+/// Difference views of one image: per channel and mode, |Y_mode − median| in grey
+/// (0 black, the channel's largest deviation over all modes white), the measured
+/// band outlined in amber and the predicted band in cyan. Returns files written.
+pub fn write_difference_views(
+    dir: &Path,
+    st: &ImageStudy,
+    modes: &[PadMode],
+) -> Result<usize, Error> {
+    let (_, oh, ow) = st.shape;
+    let mut n = 0;
+    for (k, ch) in st.channels.iter().enumerate() {
+        let med = st.median.index_axis(ndarray::Axis(0), k);
+        let diffs: Vec<Vec<f32>> = st
+            .maps
+            .iter()
+            .map(|m| {
+                m.index_axis(ndarray::Axis(0), k)
+                    .iter()
+                    .zip(med.iter())
+                    .map(|(a, b)| (a - b).abs())
+                    .collect()
+            })
+            .collect();
+        let hi = diffs
+            .iter()
+            .flatten()
+            .copied()
+            .filter(|v| v.is_finite())
+            .fold(0.0f32, f32::max);
+        let hi = if hi > 0.0 { hi } else { 1.0 };
+        let sub = dir.join(format!("{k:02}-{}", crate::jobs::safe_name(&ch.name)));
+        std::fs::create_dir_all(&sub).map_err(|e| Error::io(&sub, e))?;
+        for (m, d) in modes.iter().zip(&diffs) {
+            let mut img = RgbImage::from_fn(ow as u32, oh as u32, |x, y| {
+                let v =
+                    ((d[y as usize * ow + x as usize] / hi).clamp(0.0, 1.0) * 255.0).round() as u8;
+                Rgb([v, v, v])
+            });
+            outline(&mut img, ch.predicted, OUTLINE_PREDICTED);
+            outline(&mut img, ch.band, OUTLINE_MEASURED);
+            let p = sub.join(format!("{}.png", m.name()));
+            write_png(
+                &p,
+                img.as_raw(),
+                img.width(),
+                img.height(),
+                image::ExtendedColorType::Rgb8,
+            )?;
+            n += 1;
+        }
+    }
+    Ok(n)
+}
+
+/// Mean error by distance for one image, averaged over channels: the crop study's
+/// error when there is one, else the deviation from the median.
+pub fn curves(st: &ImageStudy) -> Vec<(PadMode, Vec<f64>)> {
+    let Some(first) = st.channels.first() else {
+        return Vec::new();
+    };
+    let limit = st.channels.iter().map(report_limit).max().unwrap_or(1);
+    let use_crop = !first.crop.is_empty();
+    (0..first.modes.len())
+        .map(|i| {
+            let mode = first.modes[i].0;
+            let pts = (0..limit)
+                .map(|d| {
+                    let (mut sum, mut n) = (0.0, 0usize);
+                    for ch in &st.channels {
+                        let v = if use_crop {
+                            &ch.crop[i].1
+                        } else {
+                            &ch.modes[i].2
+                        };
+                        if let Some(s) = v.get(d) {
+                            sum += s.sum;
+                            n += s.count;
+                        }
+                    }
+                    if n == 0 {
+                        f64::NAN
+                    } else {
+                        sum / n as f64
+                    }
+                })
+                .collect();
+            (mode, pts)
+        })
+        .collect()
+}
+
+fn nice_step(range: f64) -> f64 {
+    let raw = range / 5.0;
+    let p = 10f64.powf(raw.log10().floor());
+    let m = raw / p;
+    p * if m < 1.5 {
+        1.0
+    } else if m < 3.5 {
+        2.0
+    } else if m < 7.5 {
+        5.0
+    } else {
+        10.0
+    }
+}
+
+fn label_num(v: f64) -> String {
+    if v == 0.0 {
+        "0".into()
+    } else if v.abs() >= 0.01 && v.abs() < 1e4 {
+        let s = format!("{v:.4}");
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        format!("{v:.1e}")
+    }
+}
+
+/// Plots error against distance from the edge, one line per mode, and writes a PNG.
+/// plotters maps coordinates and draws the lines; labels use the bitmap font so no
+/// system font is needed.
+pub fn write_plot(
+    path: &Path,
+    title: &str,
+    y_label: &str,
+    curves: &[(PadMode, Vec<f64>)],
+) -> Result<(), Error> {
+    const W: u32 = 720;
+    const H: u32 = 440;
+    let xmax = curves
+        .iter()
+        .map(|(_, v)| v.len())
+        .max()
+        .unwrap_or(1)
+        .saturating_sub(1)
+        .max(1) as f64;
+    // When the largest errors dwarf the typical mode's (zero padding usually does), a
+    // logarithmic axis keeps every line readable; exact zeros are then left out.
+    let peak = |v: &Vec<f64>| {
+        v.iter()
+            .copied()
+            .filter(|x| x.is_finite())
+            .fold(0.0, f64::max)
+    };
+    let mut peaks: Vec<f64> = curves.iter().map(|(_, v)| peak(v)).collect();
+    peaks.sort_by(|a, b| b.total_cmp(a));
+    let min_pos = curves
+        .iter()
+        .flat_map(|(_, v)| v.iter().copied())
+        .filter(|x| x.is_finite() && *x > 0.0)
+        .fold(f64::INFINITY, f64::min);
+    let median_peak = peaks.get(peaks.len() / 2).copied().unwrap_or(0.0);
+    let log = peaks.len() > 1
+        && median_peak > 0.0
+        && peaks[0] / median_peak > 20.0
+        && min_pos.is_finite();
+    let (ylo, ymax) = if log {
+        let lo = min_pos.log10().floor();
+        (lo, peaks[0].log10().ceil().max(lo + 1.0))
+    } else {
+        let m = peaks.first().copied().unwrap_or(0.0);
+        (0.0, if m > 0.0 { m * 1.08 } else { 1.0 })
+    };
+    let yval = |v: f64| match (log, v > 0.0) {
+        (false, _) => Some(v),
+        (true, true) => Some(v.log10()),
+        (true, false) => None,
+    };
+    let y_label = if log {
+        format!("{y_label}, log scale")
+    } else {
+        y_label.to_string()
+    };
+    let (xstep, ystep) = (
+        nice_step(xmax).max(1.0),
+        if log { 1.0 } else { nice_step(ymax) },
+    );
+    let mut buf = vec![0u8; (W * H * 3) as usize];
+    let mut labels: Vec<(i32, i32, String, bool)> = Vec::new();
+    let legend_x;
+    {
+        let perr =
+            |e: &dyn std::fmt::Display| Error::io(path, std::io::Error::other(e.to_string()));
+        let root = BitMapBackend::with_buffer(&mut buf, (W, H)).into_drawing_area();
+        root.fill(&RGBColor(251, 250, 246)).map_err(|e| perr(&e))?;
+        let mut chart = ChartBuilder::on(&root)
+            .margin_left(78)
+            .margin_right(150)
+            .margin_top(36)
+            .margin_bottom(52)
+            .build_cartesian_2d(0f64..xmax, ylo..ymax)
+            .map_err(|e| perr(&e))?;
+        let grid = RGBColor(222, 220, 212);
+        let axis = RGBColor(60, 60, 66);
+        let mut x = 0.0;
+        while x <= xmax + 1e-9 {
+            chart
+                .draw_series(LineSeries::new([(x, ylo), (x, ymax)], grid))
+                .map_err(|e| perr(&e))?;
+            let (px, py) = chart.backend_coord(&(x, ylo));
+            labels.push((px, py + 8, label_num(x), true));
+            x += xstep;
+        }
+        let mut y = ylo;
+        while y <= ymax + 1e-12 {
+            chart
+                .draw_series(LineSeries::new([(0.0, y), (xmax, y)], grid))
+                .map_err(|e| perr(&e))?;
+            let (px, py) = chart.backend_coord(&(0.0, y));
+            let text = if log {
+                format!("1e{}", y.round() as i64)
+            } else {
+                label_num(y)
+            };
+            labels.push((px - 6, py - 4, text, false));
+            y += ystep;
+        }
+        chart
+            .draw_series(LineSeries::new(
+                [(0.0, ylo), (xmax, ylo)],
+                axis.stroke_width(2),
+            ))
+            .map_err(|e| perr(&e))?;
+        chart
+            .draw_series(LineSeries::new(
+                [(0.0, ylo), (0.0, ymax)],
+                axis.stroke_width(2),
+            ))
+            .map_err(|e| perr(&e))?;
+        for (mode, pts) in curves {
+            let ([r, g, b], dashed) = mode_style(*mode);
+            let style = RGBColor(r, g, b).stroke_width(2);
+            let data: Vec<(f64, f64)> = pts
+                .iter()
+                .enumerate()
+                .filter(|(_, v)| v.is_finite())
+                .filter_map(|(d, v)| yval(*v).map(|y| (d as f64, y)))
+                .collect();
+            if dashed {
+                chart
+                    .draw_series(DashedLineSeries::new(data.clone(), 7, 4, style))
+                    .map_err(|e| perr(&e))?;
+            } else {
+                chart
+                    .draw_series(LineSeries::new(data.clone(), style))
+                    .map_err(|e| perr(&e))?;
+            }
+            chart
+                .draw_series(
+                    data.iter()
+                        .map(|p| Circle::new(*p, 3, RGBColor(r, g, b).filled())),
+                )
+                .map_err(|e| perr(&e))?;
+        }
+        let (lx, _) = chart.backend_coord(&(xmax, ymax));
+        legend_x = lx + 16;
+        for (i, (mode, _)) in curves.iter().enumerate() {
+            let ([r, g, b], dashed) = mode_style(*mode);
+            let y = 50 + i as i32 * 20;
+            let seg: Vec<(i32, i32)> = vec![(legend_x, y + 4), (legend_x + 28, y + 4)];
+            let st = RGBColor(r, g, b).stroke_width(3);
+            if dashed {
+                root.draw(&PathElement::new(
+                    vec![(legend_x, y + 4), (legend_x + 10, y + 4)],
+                    st,
+                ))
+                .map_err(|e| perr(&e))?;
+                root.draw(&PathElement::new(
+                    vec![(legend_x + 16, y + 4), (legend_x + 28, y + 4)],
+                    st,
+                ))
+                .map_err(|e| perr(&e))?;
+            } else {
+                root.draw(&PathElement::new(seg, st))
+                    .map_err(|e| perr(&e))?;
+            }
+            labels.push((legend_x + 36, y, mode.name().to_string(), false));
+        }
+        root.present().map_err(|e| perr(&e))?;
+    }
+    let mut img = RgbImage::from_raw(W, H, buf).expect("the buffer was made W × H × 3");
+    let ink = Rgb([40, 40, 46]);
+    for (x, y, text, centred) in labels {
+        let width = 8 * text.chars().count() as i32;
+        let x0 = if centred {
+            x - width / 2
+        } else if x < legend_x {
+            x - width
+        } else {
+            x
+        };
+        draw_text(&mut img, x0.max(0) as u32, y.max(0) as u32, &text, ink);
+    }
+    draw_text(&mut img, 12, 10, title, ink);
+    let xl = "distance from the edge (output pixels)";
+    draw_text(
+        &mut img,
+        (78 + (W as i32 - 228) / 2 - 4 * xl.len() as i32).max(0) as u32,
+        H - 22,
+        xl,
+        ink,
+    );
+    draw_text(&mut img, 8, 22, &y_label, ink);
+    write_png(path, img.as_raw(), W, H, image::ExtendedColorType::Rgb8)
+}

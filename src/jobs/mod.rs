@@ -1,0 +1,255 @@
+//! Jobs: each command's work as a library function that knows nothing of
+//! terminals or exit codes. [`apply`] runs a recipe over many images,
+//! [`borders`] studies pad modes, [`probe`] finds the strongest responses,
+//! [`shard`] and [`merge`] split a job over a cluster and join it again. What
+//! they share is here: which outputs to write, how views are drawn, the
+//! [`Observer`] that hears about progress and failures, the [`Stop`] request,
+//! the job's own thread pool and the worker loop.
+//!
+//! `apply`'s output layout under `--out DIR`, mirroring each input's relative
+//! path `P` (without its extension):
+//!
+//! ```text
+//! DIR/maps/P.npy                 float32 C×H×W
+//! DIR/tiff/P/NN-<channel>.tif    32-bit float, one file per channel (optional)
+//! DIR/views/P/NN-<channel>.png   one picture per map
+//! DIR/sheets/P.png               all maps of the image beside its source
+//! DIR/stats.csv                  one row per image and channel
+//! DIR/images.csv                 one row per input, failures included
+//! DIR/manifest.json              everything needed to repeat the run
+//! ```
+
+pub mod apply;
+pub mod borders;
+pub mod inputs;
+pub mod manifest;
+pub mod merge;
+pub mod probe;
+pub mod shard;
+pub mod tables;
+
+use std::fmt;
+use std::str::FromStr;
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::Arc;
+
+use crate::error::Error;
+
+/// Which outputs a run writes (`images.csv` is always written).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Save {
+    /// `.npy` maps.
+    pub maps: bool,
+    /// 32-bit float TIFF per channel.
+    pub tiff: bool,
+    /// PNG view per map.
+    pub views: bool,
+    /// PNG sheet per image.
+    pub sheets: bool,
+    /// `stats.csv`.
+    pub stats: bool,
+    /// `manifest.json`.
+    pub manifest: bool,
+}
+
+impl Default for Save {
+    fn default() -> Self {
+        Save {
+            maps: true,
+            tiff: false,
+            views: true,
+            sheets: false,
+            stats: true,
+            manifest: true,
+        }
+    }
+}
+
+const SAVE_NAMES: [&str; 6] = ["maps", "tiff", "views", "sheets", "stats", "manifest"];
+
+impl Save {
+    fn flags(&self) -> [bool; 6] {
+        [
+            self.maps,
+            self.tiff,
+            self.views,
+            self.sheets,
+            self.stats,
+            self.manifest,
+        ]
+    }
+}
+
+impl FromStr for Save {
+    type Err = String;
+    /// A comma-separated list of maps, tiff, views, sheets, stats, manifest, or `all`.
+    fn from_str(s: &str) -> Result<Self, String> {
+        let mut f = [false; 6];
+        for part in s.split(',').map(str::trim).filter(|p| !p.is_empty()) {
+            if part == "all" {
+                f = [true; 6];
+                continue;
+            }
+            let i = SAVE_NAMES.iter().position(|n| *n == part).ok_or_else(|| {
+                format!(
+                    "unknown output '{part}'; choose from {} or all",
+                    SAVE_NAMES.join(", ")
+                )
+            })?;
+            f[i] = true;
+        }
+        Ok(Save {
+            maps: f[0],
+            tiff: f[1],
+            views: f[2],
+            sheets: f[3],
+            stats: f[4],
+            manifest: f[5],
+        })
+    }
+}
+
+impl fmt::Display for Save {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let on: Vec<&str> = SAVE_NAMES
+            .iter()
+            .zip(self.flags())
+            .filter(|(_, b)| *b)
+            .map(|(n, _)| *n)
+            .collect();
+        f.write_str(&on.join(","))
+    }
+}
+
+/// How views are drawn.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct ViewOptions {
+    /// Fixed value range for every view; `None`: per map.
+    pub range: Option<(f32, f32)>,
+    /// 16-bit grey views.
+    pub depth16: bool,
+}
+
+pub use apply::{run_apply, ApplyJob, Summary};
+
+/// What a job tells whoever runs it while it works: how far it is, which inputs
+/// failed, and text for people. The command line shows these on the terminal;
+/// an embedding program may log them or ignore them ([`Quiet`]). Jobs call
+/// these from several threads.
+pub trait Observer: Sync {
+    /// The job will work through `total` inputs.
+    fn begin(&self, _total: usize) {}
+    /// One more input is done (processed, failed or taken over).
+    fn advance(&self) {}
+    /// An input failed with this error; the job goes on with the others.
+    fn input_failed(&self, _error: &Error) {}
+    /// Text for people about one finished input (the border study's table).
+    fn report(&self, _text: &str) {}
+    /// The job has finished its inputs.
+    fn end(&self) {}
+}
+
+/// An observer that shows nothing.
+pub struct Quiet;
+
+impl Observer for Quiet {}
+
+/// A request to stop, shared between whoever asks (a signal handler, another
+/// thread) and the job, which finishes the inputs in flight, starts no new
+/// ones and writes its tables for what is done. Holds the signal number that
+/// asked, or 0 for none.
+#[derive(Debug, Clone, Default)]
+pub struct Stop(Arc<AtomicUsize>);
+
+impl Stop {
+    /// A stop that nobody has asked for yet.
+    pub fn new() -> Self {
+        Stop::default()
+    }
+
+    /// Asks the job to stop; `signal` is recorded (use 0 when no signal asked,
+    /// which still stops but reads as `Some(0)`).
+    pub fn request(&self, signal: i32) {
+        self.0
+            .store(signal.max(0) as usize | STOP_ASKED, Ordering::SeqCst);
+    }
+
+    /// The signal that asked for a stop, if one was asked for.
+    pub fn requested(&self) -> Option<i32> {
+        let v = self.0.load(Ordering::SeqCst);
+        (v & STOP_ASKED != 0).then_some((v & !STOP_ASKED) as i32)
+    }
+
+    /// The shared flag, for registering with a signal handler that stores
+    /// `STOP_ASKED | signal` into it.
+    pub fn flag(&self) -> Arc<AtomicUsize> {
+        Arc::clone(&self.0)
+    }
+}
+
+/// The bit a stop request sets beside the signal number.
+pub const STOP_ASKED: usize = 1 << 16;
+
+/// A thread pool of `threads` threads for one job's parallel work. The job runs
+/// its computations inside it, so an embedding program's own global pool is
+/// left alone.
+pub fn thread_pool(threads: usize) -> Result<rayon::ThreadPool, Error> {
+    rayon::ThreadPoolBuilder::new()
+        .num_threads(threads.max(1))
+        .thread_name(|i| format!("tapmap-{i}"))
+        .build()
+        .map_err(|e| Error::usage(format!("cannot start {threads} threads: {e}")))
+}
+
+/// Calls `f(index, item)` for every item on `workers` threads that take items
+/// from a shared counter one at a time, so at most `workers` items are in
+/// flight; takes no new item once `stop` has been requested. Work inside `f`
+/// may run on the job's thread pool; the workers are plain threads, so they
+/// never pick up another item while waiting for that work.
+pub fn for_each_parallel<T: Sync>(
+    items: &[T],
+    workers: usize,
+    stop: &Stop,
+    f: impl Fn(usize, &T) + Sync,
+) {
+    let next = AtomicUsize::new(0);
+    let workers = workers.clamp(1, items.len().max(1));
+    std::thread::scope(|scope| {
+        for _ in 0..workers {
+            scope.spawn(|| loop {
+                if stop.requested().is_some() {
+                    break;
+                }
+                let i = next.fetch_add(1, Ordering::Relaxed);
+                let Some(item) = items.get(i) else { break };
+                f(i, item);
+            });
+        }
+    });
+}
+
+/// Makes a name safe as one file-name component: letters, digits and `-_.@=+`
+/// only, no leading dot and no `..` anywhere.
+pub fn safe_name(name: &str) -> String {
+    let mut prev = ' ';
+    let s: String = name
+        .chars()
+        .map(|c| {
+            let c = if (c.is_ascii_alphanumeric() || "-_.@=+".contains(c))
+                && !(c == '.' && prev == '.')
+            {
+                c
+            } else {
+                '_'
+            };
+            prev = c;
+            c
+        })
+        .collect();
+    let s = s.trim_start_matches('.').to_string();
+    if s.is_empty() {
+        "map".into()
+    } else {
+        s
+    }
+}

@@ -1,0 +1,22 @@
+//! tapmap's integration tests, in one binary (one link of the crate instead of
+//! one per file). Each module is one area; `common` holds the independent
+//! oracle and shared helpers.
+
+mod common;
+
+mod api;
+mod bad_inputs;
+mod batch;
+mod borders;
+mod cli;
+mod engine_oracle;
+mod fusion;
+mod identities;
+mod kernels;
+mod learned;
+mod published;
+mod regression;
+mod render;
+mod resume;
+mod sample_data;
+mod shards;

@@ -1,0 +1,128 @@
+//! The diverging colour scale, colour conversions, views and sheets.
+
+use tapmap::render::colormap::{diverging, lab_to_srgb, srgb_to_lab, table, NEGATIVE, POSITIVE};
+use tapmap::render::sheet::{draw_text, sheet};
+use tapmap::render::view::{mapping, render, Scale, ViewImage};
+
+#[test]
+fn cielab_of_srgb_white_and_red() {
+    // D65 white is L* = 100, a* = b* = 0 (CIE 15:2004).
+    let w = srgb_to_lab([1.0, 1.0, 1.0]);
+    assert!(
+        (w[0] - 100.0).abs() < 0.01 && w[1].abs() < 0.01 && w[2].abs() < 0.01,
+        "{w:?}"
+    );
+    // sRGB red: L* 53.24, a* 80.09, b* 67.20 (widely tabulated; from memory).
+    let r = srgb_to_lab([1.0, 0.0, 0.0]);
+    assert!(
+        (r[0] - 53.24).abs() < 0.05 && (r[1] - 80.09).abs() < 0.1 && (r[2] - 67.20).abs() < 0.1,
+        "{r:?}"
+    );
+    // Round trip.
+    for c in [[0.2, 0.5, 0.7], [0.9, 0.1, 0.3], [0.0, 0.0, 0.0]] {
+        let back = lab_to_srgb(srgb_to_lab(c));
+        for i in 0..3 {
+            assert!((back[i] - c[i]).abs() < 1e-6, "{c:?} -> {back:?}");
+        }
+    }
+}
+
+#[test]
+fn diverging_scale_has_its_endpoints_a_light_centre_and_monotone_lightness() {
+    let t = table();
+    assert_eq!(t.len(), 256);
+    let near = |a: [u8; 3], b: [u8; 3]| {
+        a.iter()
+            .zip(b)
+            .all(|(x, y)| (*x as i32 - y as i32).abs() <= 1)
+    };
+    assert!(
+        near(t[0], NEGATIVE) && near(t[255], POSITIVE),
+        "{:?} {:?}",
+        t[0],
+        t[255]
+    );
+    let l = |c: [u8; 3]| srgb_to_lab(c.map(|v| v as f64 / 255.0))[0];
+    // Moreland 2009: lightness rises to the (unsaturated) middle and falls after it.
+    for i in 1..128 {
+        assert!(l(t[i]) >= l(t[i - 1]) - 0.3, "rising at {i}");
+    }
+    for i in 129..256 {
+        assert!(l(t[i]) <= l(t[i - 1]) + 0.3, "falling at {i}");
+    }
+    let mid = srgb_to_lab(diverging(
+        NEGATIVE.map(|v| v as f64 / 255.0),
+        POSITIVE.map(|v| v as f64 / 255.0),
+        0.5,
+    ));
+    assert!(
+        mid[0] > 85.0 && mid[1].abs() < 2.0 && mid[2].abs() < 2.0,
+        "centre is near white: {mid:?}"
+    );
+    // The two ends have similar lightness, so neither sign looks stronger.
+    assert!((l(t[0]) - l(t[255])).abs() < 6.0);
+}
+
+#[test]
+fn views_map_values_to_levels_as_recorded() {
+    let v = [0.0f32, 0.25, 0.5, 1.0];
+    let m = mapping(&v, false, None, false);
+    assert_eq!(
+        (m.scale, m.lo, m.hi, m.levels),
+        (Scale::Grey, 0.0, 1.0, 255)
+    );
+    let ViewImage::Grey8(g) = render(&v, 1, 4, &m, &table()) else {
+        panic!("grey")
+    };
+    assert_eq!(g.as_raw(), &vec![0, 64, 128, 255]);
+    let s = [-2.0f32, 0.0, 1.0, 2.0];
+    let m = mapping(&s, true, None, false);
+    assert_eq!((m.scale, m.lo, m.hi), (Scale::Diverging, -2.0, 2.0));
+    let tab = table();
+    let ViewImage::Rgb8(c) = render(&s, 1, 4, &m, &tab) else {
+        panic!("colour")
+    };
+    assert_eq!(c.get_pixel(0, 0).0, tab[0]);
+    assert_eq!(c.get_pixel(3, 0).0, tab[255]);
+    assert_eq!(c.get_pixel(1, 0).0, tab[128], "zero at the centre");
+    let m16 = mapping(&v, false, Some((0.0, 2.0)), true);
+    let ViewImage::Grey16(g) = render(&v, 1, 4, &m16, &tab) else {
+        panic!("grey16")
+    };
+    assert_eq!(g.as_raw(), &vec![0, 8192, 16384, 32768]);
+}
+
+#[test]
+fn sheets_carry_labels_in_the_bitmap_font() {
+    let cell = image::RgbImage::from_pixel(20, 10, image::Rgb([0, 0, 0]));
+    let s = sheet(
+        "title",
+        &[("alpha".into(), cell.clone()), ("beta".into(), cell)],
+    );
+    assert!(s.width() >= 192 && s.height() > 96);
+    let ink = s.pixels().filter(|p| p.0 == [232, 230, 222]).count();
+    assert!(ink > 40, "labels drawn: {ink} ink pixels");
+    let mut blank = image::RgbImage::new(16, 8);
+    draw_text(&mut blank, 0, 0, "I", image::Rgb([255, 255, 255]));
+    assert!(blank.pixels().any(|p| p.0 == [255, 255, 255]));
+}
+
+#[test]
+fn csv_columns_match_the_shipped_schemas() {
+    use tapmap::jobs::tables::{IMAGES_COLUMNS, STATS_COLUMNS};
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("shared/schemas");
+    for (file, cols) in [
+        ("stats.csv.json", &STATS_COLUMNS[..]),
+        ("images.csv.json", &IMAGES_COLUMNS[..]),
+    ] {
+        let v: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.join(file)).unwrap()).unwrap();
+        let names: Vec<&str> = v["columns"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| c["name"].as_str().unwrap())
+            .collect();
+        assert_eq!(names, cols, "{file}");
+    }
+}
