@@ -354,11 +354,13 @@ pub fn views_record(range: Option<(f32, f32)>) -> ViewsRecord {
 #[derive(Deserialize)]
 struct Head {
     format: Option<String>,
+    #[serde(alias = "journal_version")]
     manifest_version: Option<u32>,
 }
 
-/// Checks that `text` is a manifest of this tapmap's layout: its `format` and
-/// `manifest_version`. `path` names the file in messages.
+/// Checks that `text` is a file of tapmap's of kind `format` in this tapmap's
+/// layout `version` (the `manifest_version` or `journal_version` field).
+/// `path` names the file in messages.
 pub fn check_format(text: &str, path: &Path, format: &str, version: u32) -> Result<(), Error> {
     let head: Head = serde_json::from_str(text)
         .map_err(|e| Error::record(path, format!("is not a tapmap {format} file: {e}")))?;

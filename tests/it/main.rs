@@ -19,4 +19,5 @@ mod regression;
 mod render;
 mod resume;
 mod sample_data;
+mod schema;
 mod shards;

@@ -32,7 +32,7 @@ pub const JOURNAL_VERSION: u32 = 1;
 #[derive(Serialize)]
 struct HeadOut {
     format: &'static str,
-    manifest_version: u32,
+    journal_version: u32,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -42,11 +42,9 @@ struct Line {
 }
 
 fn head_line() -> String {
-    // The layout check is shared with manifests, so the version field has the
-    // manifest's name.
     serde_json::to_string(&HeadOut {
         format: JOURNAL_FORMAT,
-        manifest_version: JOURNAL_VERSION,
+        journal_version: JOURNAL_VERSION,
     })
     .expect("plain fields")
         + "\n"
