@@ -27,15 +27,19 @@ impl Buffers {
     }
 
     /// A buffer with room for `len` samples; its length is whatever it held, so
-    /// clear or truncate it. The smallest spare that fits, else a new one backed
-    /// by huge pages where the system allows (see [`advise_huge_range`]).
+    /// clear or truncate it. The smallest spare that fits and is not more than
+    /// twice the size asked for (a band's small scratch must not take the
+    /// buffer kept for a whole image's maps, or the set would fill with large
+    /// buffers image after image), else a new one backed by huge pages where
+    /// the system allows (see [`advise_huge_range`]).
     pub(crate) fn take(&self, len: usize) -> Vec<f32> {
         let found = {
             let mut s = self.spare.lock().unwrap_or_else(|e| e.into_inner());
+            let most = len.max(1 << 16).saturating_mul(2);
             let best = s
                 .iter()
                 .enumerate()
-                .filter(|(_, b)| b.capacity() >= len)
+                .filter(|(_, b)| b.capacity() >= len && b.capacity() <= most)
                 .min_by_key(|(_, b)| b.capacity())
                 .map(|(i, _)| i);
             best.map(|i| s.swap_remove(i))
@@ -108,12 +112,15 @@ mod tests {
     #[test]
     fn spares_are_reused_smallest_first_and_bounded() {
         let b = Buffers::new(2);
+        let k = 1 << 16;
         b.give(Vec::with_capacity(100));
         b.give(Vec::with_capacity(10));
-        b.give(Vec::with_capacity(1000));
+        b.give(Vec::with_capacity(3 * k));
         // Three given, two kept: the smallest went.
-        assert!(b.take(5).capacity() >= 100);
-        assert_eq!(b.take(5).capacity(), 1000);
+        assert_eq!(b.take(5).capacity(), 100);
+        // A large spare is not handed to a request under half its size.
+        assert!(b.take(k).capacity() < 3 * k);
+        assert_eq!(b.take(2 * k).capacity(), 3 * k);
         assert_eq!(b.scratch(7).len(), 7);
     }
 }
