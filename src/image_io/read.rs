@@ -63,7 +63,10 @@ pub fn read_image(path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error>
 /// it in messages. See [`read_image`].
 pub fn decode_image(bytes: &[u8], path: &Path, opts: &ReadOptions) -> Result<LoadedImage, Error> {
     let img = decode_any(bytes, path, opts).map_err(|e| e.in_file(path))?;
-    let bad_samples = img.data.iter().filter(|v| !v.is_finite()).count();
+    let bad_samples = match img.data.as_slice() {
+        Some(s) => s.iter().filter(|v| !v.is_finite()).count(),
+        None => img.data.iter().filter(|v| !v.is_finite()).count(),
+    };
     if bad_samples > 0 {
         return Err(Error::decode(
             path,

@@ -183,6 +183,8 @@ pub enum PoolSizeRecord {
 pub struct ViewsRecord {
     /// `--view-range`, when fixed.
     pub range: Option<[f32; 2]>,
+    /// `--view-png`: how the PNGs were compressed (their pixels do not depend on it).
+    pub png: crate::render::ViewPng,
     /// The grey scale's inverse rule.
     pub grey: String,
     /// The diverging scale's inverse rule.
@@ -337,12 +339,13 @@ pub fn recipe_record(spec: &RecipeSpec) -> RecipeRecord {
 }
 
 /// The view rules of a run with `range` fixed (or per map).
-pub fn views_record(range: Option<(f32, f32)>) -> ViewsRecord {
+pub fn views_record(range: Option<(f32, f32)>, png: crate::render::ViewPng) -> ViewsRecord {
     ViewsRecord {
         range: range.map(|(a, b)| [a, b]),
+        png,
         grey: "level L of D (D = levels) stands for lo + L/D·(hi − lo)".into(),
-        diverging: "table index i (0–255) stands for (i − 127.5)/127.5·hi when i ≥ 127.5, \
-                    (i − 127.5)/127.5·|lo| below"
+        diverging: "table index i (0–255, the pixel of the indexed PNG) stands for \
+                    (i − 127.5)/127.5·hi when i ≥ 127.5, (i − 127.5)/127.5·|lo| below"
             .into(),
         diverging_method: "Moreland 2009, Msh interpolation".into(),
         diverging_endpoints: [colormap::NEGATIVE, colormap::POSITIVE],

@@ -128,6 +128,8 @@ pub struct ViewOptions {
     pub range: Option<(f32, f32)>,
     /// 16-bit grey views.
     pub depth16: bool,
+    /// How view PNGs are compressed.
+    pub png: crate::render::ViewPng,
 }
 
 pub use apply::{run_apply, ApplyJob, Summary};

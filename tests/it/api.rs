@@ -146,7 +146,7 @@ fn pools_and_recipes_refuse_windows_larger_than_their_maps() {
 fn pictures_and_files_check_their_lengths() {
     use tapmap::render::view::{mapping, render};
     let m = mapping(&[0.0, 1.0], false, None, false);
-    let short = std::panic::catch_unwind(|| render(&[0.0; 5], 2, 3, &m, &[[0; 3]; 256]));
+    let short = std::panic::catch_unwind(|| render(&[0.0; 5], 2, 3, &m));
     let Err(panic) = short else {
         panic!("too few samples were drawn")
     };

@@ -71,7 +71,7 @@ fn views_map_values_to_levels_as_recorded() {
         (m.scale, m.lo, m.hi, m.levels),
         (Scale::Grey, 0.0, 1.0, 255)
     );
-    let ViewImage::Grey8(g) = render(&v, 1, 4, &m, &table()) else {
+    let ViewImage::Grey8(g) = render(&v, 1, 4, &m) else {
         panic!("grey")
     };
     assert_eq!(g.as_raw(), &vec![0, 64, 128, 255]);
@@ -79,14 +79,24 @@ fn views_map_values_to_levels_as_recorded() {
     let m = mapping(&s, true, None, false);
     assert_eq!((m.scale, m.lo, m.hi), (Scale::Diverging, -2.0, 2.0));
     let tab = table();
-    let ViewImage::Rgb8(c) = render(&s, 1, 4, &m, &tab) else {
-        panic!("colour")
+    let pic = render(&s, 1, 4, &m);
+    let ViewImage::Indexed(i) = &pic else {
+        panic!("indices into the diverging table")
     };
+    assert_eq!(i.as_raw(), &vec![0, 128, 191, 255], "zero at the centre");
+    let c = pic.to_rgb8(&tab);
     assert_eq!(c.get_pixel(0, 0).0, tab[0]);
     assert_eq!(c.get_pixel(3, 0).0, tab[255]);
-    assert_eq!(c.get_pixel(1, 0).0, tab[128], "zero at the centre");
+    assert_eq!(c.get_pixel(1, 0).0, tab[128]);
+    // Written as an indexed PNG whose palette is the table: any decoder shows
+    // exactly the table's colours.
+    let t = tempfile::TempDir::new().unwrap();
+    let path = t.path().join("v.png");
+    tapmap::render::write_view(&path, &pic, &tab, Default::default()).unwrap();
+    let back = image::open(&path).unwrap().to_rgb8();
+    assert_eq!(back, c);
     let m16 = mapping(&v, false, Some((0.0, 2.0)), true);
-    let ViewImage::Grey16(g) = render(&v, 1, 4, &m16, &tab) else {
+    let ViewImage::Grey16(g) = render(&v, 1, 4, &m16) else {
         panic!("grey16")
     };
     assert_eq!(g.as_raw(), &vec![0, 8192, 16384, 32768]);

@@ -132,7 +132,7 @@ impl ApplyJob {
             recipe: recipe_record(&self.spec),
             save: self.save.to_string(),
             threshold: self.threshold,
-            views: views_record(self.view.range),
+            views: views_record(self.view.range, self.view.png),
         }
     }
 

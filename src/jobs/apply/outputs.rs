@@ -59,8 +59,13 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
             return Err(Error::decode(&item.source, p.clone()));
         }
         let bytes = read_input(&item.source, &cx.spec.input.limits)?;
-        row.sha256 = Some(sha256_hex(&bytes));
-        let img = decode_image(&bytes, &item.source, &cx.spec.input)?;
+        // The digest and the decoder read the same bytes, each on its own core.
+        let (sha, img) = rayon::join(
+            || sha256_hex(&bytes),
+            || decode_image(&bytes, &item.source, &cx.spec.input),
+        );
+        row.sha256 = Some(sha);
+        let img = img?;
         drop(bytes);
         row.meta = Some(img.meta.clone());
         let plan = cx
@@ -122,6 +127,17 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
     }
 }
 
+/// What one map of an image gave: the files written for it (each only once
+/// whole), its statistics, its view's mapping and its sheet cell.
+#[derive(Default)]
+struct MapOut {
+    tiff: Option<PathBuf>,
+    view: Option<(PathBuf, crate::render::view::ViewMapping)>,
+    stats: Option<crate::stats::MapStats>,
+    cell: Option<(String, image::RgbImage)>,
+    error: Option<Error>,
+}
+
 #[allow(clippy::too_many_arguments)]
 fn write_outputs(
     cx: &ImageContext,
@@ -133,89 +149,138 @@ fn write_outputs(
     entry: &mut InputRecord,
     written: &mut Vec<PathBuf>,
 ) -> Result<(), Error> {
+    use rayon::prelude::*;
     let out = cx.dir;
     let (c, h, w) = maps.dim();
     let names = plan.channel_names();
     let nonneg = plan.non_negative(!img.meta.float);
     let stem = item.stem_path();
-    let mut record = |path: PathBuf, entry: &mut InputRecord| -> Result<(), Error> {
-        let bytes = std::fs::metadata(&path)
-            .map_err(|e| Error::io(&path, e))?
-            .len();
-        entry.outputs.push(FileRecord {
-            path: slash(path.strip_prefix(out).unwrap_or(&path)),
-            bytes,
-        });
-        written.push(path);
-        Ok(())
-    };
     let data = maps.as_slice().expect("plans return standard layout");
     let plane = |k: usize| &data[k * h * w..(k + 1) * h * w];
     let file_of = |k: usize, ext: &str| format!("{k:02}-{}.{ext}", safe_name(&names[k]));
+    let draw = cx.save.views || cx.save.sheets;
 
-    if cx.save.maps {
-        let p = item.output_file(&out.join("maps"), "npy");
-        crate::image_io::write_npy(&p, maps.view())?;
-        record(p, entry)?;
+    // One map's work: its TIFF, its statistics, its view (PNG encode) and sheet
+    // cell. Maps run in parallel; the `.npy` of all maps is written meanwhile.
+    let one_map = |k: usize| -> MapOut {
+        let mut o = MapOut::default();
+        let result = (|| -> Result<(), Error> {
+            if cx.save.tiff {
+                let p = out.join("tiff").join(&stem).join(file_of(k, "tif"));
+                crate::image_io::write_f32_tiff(&p, plane(k), w, h)?;
+                o.tiff = Some(p);
+            }
+            if cx.save.stats {
+                o.stats = Some(map_stats(plane(k), cx.threshold));
+            }
+            if draw {
+                let (signed, range, deep) = (!nonneg[k], cx.view.range, cx.view.depth16);
+                // The statistics found the extremes already, when they were asked for.
+                let m = match &o.stats {
+                    Some(s) => view::mapping_from_extremes(s.min, s.max, signed, range, deep),
+                    None => view::mapping(plane(k), signed, range, deep),
+                };
+                let pic = view::render(plane(k), h, w, &m);
+                if cx.save.sheets {
+                    o.cell = Some((
+                        format!("{} [{}, {}]", names[k], sig3(m.lo), sig3(m.hi)),
+                        pic.to_rgb8(cx.table),
+                    ));
+                }
+                if cx.save.views {
+                    let p = out.join("views").join(&stem).join(file_of(k, "png"));
+                    write_view(&p, &pic, cx.table, cx.view.png)?;
+                    o.view = Some((p, m));
+                }
+            }
+            Ok(())
+        })();
+        o.error = result.err();
+        o
+    };
+    let npy = item.output_file(&out.join("maps"), "npy");
+    let (npy_written, per_map) = rayon::join(
+        || {
+            cx.save
+                .maps
+                .then(|| crate::image_io::write_npy(&npy, maps.view()))
+        },
+        || (0..c).into_par_iter().map(one_map).collect::<Vec<MapOut>>(),
+    );
+    // Every file that was written is known before any error is returned, so a
+    // failed image leaves none behind.
+    let mut per_map = per_map;
+    for o in &per_map {
+        written.extend(o.tiff.iter().cloned());
+        written.extend(o.view.iter().map(|v| v.0.clone()));
     }
-    if cx.save.tiff {
-        for k in 0..c {
-            let p = out.join("tiff").join(&stem).join(file_of(k, "tif"));
-            crate::image_io::write_f32_tiff(&p, plane(k), w, h)?;
+    let npy_ok = match npy_written {
+        Some(Ok(())) => {
+            written.push(npy.clone());
+            true
+        }
+        Some(Err(e)) => return Err(e),
+        None => false,
+    };
+    if let Some(e) = per_map.iter_mut().find_map(|o| o.error.take()) {
+        return Err(e);
+    }
+    let record = |path: &Path, entry: &mut InputRecord| -> Result<(), Error> {
+        let bytes = std::fs::metadata(path)
+            .map_err(|e| Error::io(path, e))?
+            .len();
+        entry.outputs.push(FileRecord {
+            path: slash(path.strip_prefix(out).unwrap_or(path)),
+            bytes,
+        });
+        Ok(())
+    };
+    if npy_ok {
+        record(&npy, entry)?;
+    }
+    for o in &per_map {
+        if let Some(p) = &o.tiff {
             record(p, entry)?;
         }
     }
-    let mut scratch = Vec::new();
-    if cx.save.stats {
-        for (k, name) in names.iter().enumerate().take(c) {
+    let mut cells = Vec::new();
+    if cx.save.sheets {
+        cells.push(("source".to_string(), crate::render::input_picture(img)));
+    }
+    for (k, o) in per_map.into_iter().enumerate() {
+        if let Some(s) = o.stats {
             stats.push(StatsRow {
                 path: item.rel_string(),
                 channel: k,
-                name: name.clone(),
+                name: names[k].clone(),
                 width: w,
                 height: h,
-                stats: map_stats(plane(k), cx.threshold, &mut scratch),
+                stats: s,
             });
         }
+        if let Some((p, mapping)) = o.view {
+            entry.views.push(ViewRecord {
+                channel: k,
+                name: names[k].clone(),
+                file: slash(p.strip_prefix(out).unwrap_or(&p)),
+                mapping,
+            });
+            record(&p, entry)?;
+        }
+        cells.extend(o.cell);
     }
-    if cx.save.views || cx.save.sheets {
-        let mut cells = Vec::new();
-        if cx.save.sheets {
-            cells.push(("source".to_string(), crate::render::input_picture(img)));
-        }
-        for k in 0..c {
-            let m = view::mapping(plane(k), !nonneg[k], cx.view.range, cx.view.depth16);
-            let pic = view::render(plane(k), h, w, &m, cx.table);
-            if cx.save.views {
-                let p = out.join("views").join(&stem).join(file_of(k, "png"));
-                write_view(&p, &pic)?;
-                entry.views.push(ViewRecord {
-                    channel: k,
-                    name: names[k].clone(),
-                    file: slash(p.strip_prefix(out).unwrap_or(&p)),
-                    mapping: m.clone(),
-                });
-                record(p, entry)?;
-            }
-            if cx.save.sheets {
-                cells.push((
-                    format!("{} [{}, {}]", names[k], sig3(m.lo), sig3(m.hi)),
-                    pic.to_rgb8(),
-                ));
-            }
-        }
-        if cx.save.sheets {
-            let s = sheet::sheet(&item.rel_string(), &cells);
-            let p = item.output_file(&out.join("sheets"), "png");
-            write_png(
-                &p,
-                s.as_raw(),
-                s.width(),
-                s.height(),
-                image::ExtendedColorType::Rgb8,
-            )?;
-            record(p, entry)?;
-        }
+    if cx.save.sheets {
+        let s = sheet::sheet(&item.rel_string(), &cells);
+        let p = item.output_file(&out.join("sheets"), "png");
+        write_png(
+            &p,
+            s.as_raw(),
+            s.width(),
+            s.height(),
+            image::ExtendedColorType::Rgb8,
+        )?;
+        written.push(p.clone());
+        record(&p, entry)?;
     }
     Ok(())
 }
