@@ -225,3 +225,56 @@ fn luma_weights_are_bt709() {
         assert_eq!(*ours as f64, (*theirs as f32) as f64);
     }
 }
+
+#[test]
+fn statistics_equal_numpy_on_recorded_maps() {
+    // shared/reference/numpy_stats.json, recorded by tools/numpy_stats_cases.py:
+    // numpy.percentile's default method (linear, Hyndman & Fan 1996 definition
+    // 7), min, max, mean and std (ddof 0) over the finite samples as float64.
+    // The maps cover both paths of tapmap's statistics (the plain one for small
+    // maps, the histogram one above 65,536 samples). Order statistics are exact;
+    // the interpolated value may differ by rounding only, because numpy writes
+    // the interpolation as b − (b − a)(1 − t) for t ≥ 0.5: a few ulps allowed.
+    // Mean and std are f64 sums in another order: 1e-12 relative.
+    let t = reference("numpy_stats.json");
+    let cases = t["cases"].as_array().unwrap();
+    assert_eq!(cases.len(), 6);
+    for c in cases {
+        let int = |k: &str| c[k].as_i64().unwrap();
+        let (n, a, b, m, off) = (int("n"), int("a"), int("b"), int("m"), int("c"));
+        let d = c["d"].as_f64().unwrap();
+        let mut v: Vec<f32> = (0..n)
+            .map(|i| ((((i * a + b) % m) - off) as f64 / d) as f32)
+            .collect();
+        let (z, q) = (int("zero_every") as usize, int("nan_every") as usize);
+        if z > 0 {
+            v.iter_mut().step_by(z).for_each(|x| *x = 0.0);
+        }
+        if q > 0 {
+            v.iter_mut().skip(1).step_by(q).for_each(|x| *x = f32::NAN);
+        }
+        let s = tapmap::stats::map_stats(&v, None);
+        let name = c["name"].as_str().unwrap();
+        assert_eq!(s.count as i64, int("count"), "{name}");
+        assert_eq!(s.non_finite as i64, int("non_finite"), "{name}");
+        let close = |got: Option<f64>, key: &str, rel: f64| {
+            let want = c[key].as_f64().unwrap();
+            let got = got.unwrap();
+            let scale = want.abs().max(c["max"].as_f64().unwrap().abs()).max(1e-300);
+            assert!(
+                (got - want).abs() <= rel * scale,
+                "{name} {key}: tapmap {got:e}, numpy {want:e}"
+            );
+        };
+        for key in ["min", "max"] {
+            let got = if key == "min" { s.min } else { s.max };
+            assert_eq!(got.unwrap(), c[key].as_f64().unwrap(), "{name} {key}");
+        }
+        close(s.p1, "p01", 4.0 * f64::EPSILON);
+        close(s.p50, "p50", 4.0 * f64::EPSILON);
+        close(s.p99, "p99", 4.0 * f64::EPSILON);
+        close(s.mean, "mean", 1e-12);
+        close(s.std, "std", 1e-12);
+        assert_eq!(s.zero_fraction, c["zero_fraction"].as_f64().unwrap(), "{name}");
+    }
+}
