@@ -275,6 +275,10 @@ fn statistics_equal_numpy_on_recorded_maps() {
         close(s.p99, "p99", 4.0 * f64::EPSILON);
         close(s.mean, "mean", 1e-12);
         close(s.std, "std", 1e-12);
-        assert_eq!(s.zero_fraction, c["zero_fraction"].as_f64().unwrap(), "{name}");
+        assert_eq!(
+            s.zero_fraction,
+            c["zero_fraction"].as_f64().unwrap(),
+            "{name}"
+        );
     }
 }

@@ -5,6 +5,8 @@
 use std::path::PathBuf;
 use std::sync::Mutex;
 
+use rayon::prelude::*;
+
 use crate::engine::Engine;
 use crate::error::Error;
 use crate::image_io::read_image;
@@ -73,7 +75,9 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
             let (oc, oh, ow) = maps.dim();
             let data = maps.as_slice().expect("plans return standard layout");
             let path = item.rel_string();
+            // Channels in parallel (each also spreads its bands over the pool).
             let hits: Vec<Vec<Hit>> = (0..oc)
+                .into_par_iter()
                 .map(|ch| {
                     channel_hits(
                         &data[ch * oh * ow..(ch + 1) * oh * ow],

@@ -79,7 +79,68 @@ pub fn region_of(
     (r.start(y), c.start(x), r.size, c.size)
 }
 
-/// Up to `k` separated hits of one channel (row-major, `w` wide) of one image's maps.
+/// A sample of a map by its response, larger first, then by position.
+#[derive(Clone, Copy, PartialEq)]
+struct Candidate {
+    v: f32,
+    i: usize,
+}
+
+impl Eq for Candidate {}
+
+impl Ord for Candidate {
+    /// Greater is better: a larger response, or the same one earlier in the map.
+    fn cmp(&self, o: &Self) -> Ordering {
+        self.v.total_cmp(&o.v).then(o.i.cmp(&self.i))
+    }
+}
+
+impl PartialOrd for Candidate {
+    fn partial_cmp(&self, o: &Self) -> Option<Ordering> {
+        Some(self.cmp(o))
+    }
+}
+
+/// The best `t` finite samples of `map` (offset by `base` in the whole map),
+/// best first: a bounded heap, so memory is `t` whatever the map's size.
+fn best_of(map: &[f32], base: usize, t: usize) -> Vec<Candidate> {
+    use std::cmp::Reverse;
+    use std::collections::BinaryHeap;
+    let mut heap: BinaryHeap<Reverse<Candidate>> = BinaryHeap::with_capacity(t + 1);
+    for (j, &v) in map.iter().enumerate() {
+        if !v.is_finite() {
+            continue;
+        }
+        if heap.len() == t {
+            // Most samples fall below the worst kept one: one compare.
+            let worst = heap.peek().expect("full").0;
+            if v < worst.v {
+                continue;
+            }
+        }
+        let c = Candidate { v, i: base + j };
+        if heap.len() < t {
+            heap.push(Reverse(c));
+        } else if c > heap.peek().expect("full").0 {
+            heap.pop();
+            heap.push(Reverse(c));
+        }
+    }
+    let mut out: Vec<Candidate> = heap.into_iter().map(|r| r.0).collect();
+    out.sort_unstable_by(|a, b| b.cmp(a));
+    out
+}
+
+/// Up to `k` separated hits of one channel (row-major, `w` wide) of one image's
+/// maps.
+///
+/// Taking samples from the largest down, each kept hit rules out the samples
+/// closer than the separation (sy, sx) to it: at most W − 1 of them, for a
+/// window of W = (2·sy − 1)(2·sx − 1) samples. So the first k hits are found
+/// among the best k·W samples, and only those are ever held: each band of
+/// rows keeps its best k·W in a bounded heap, in parallel, and the bands'
+/// lists are merged. The result is the same as going through the whole map in
+/// order.
 pub fn channel_hits(
     map: &[f32],
     w: usize,
@@ -88,15 +149,22 @@ pub fn channel_hits(
     img: &LoadedImage,
     path: &str,
 ) -> Vec<Hit> {
+    use rayon::prelude::*;
     let (sy, sx) = separation(field);
-    let mut idx: Vec<usize> = (0..map.len()).filter(|i| map[*i].is_finite()).collect();
-    let key = |i: &usize| map[*i];
-    // Largest first; ties by position, so the choice is deterministic.
-    idx.sort_unstable_by(|a, b| key(b).total_cmp(&key(a)).then(a.cmp(b)));
+    let window = (2 * sy - 1).saturating_mul(2 * sx - 1);
+    let t = k.saturating_mul(window).clamp(1, map.len().max(1));
+    let band = (w * 64).max(t);
+    let mut best: Vec<Candidate> = map
+        .par_chunks(band.max(1))
+        .enumerate()
+        .flat_map_iter(|(b, rows)| best_of(rows, b * band, t))
+        .collect();
+    best.sort_unstable_by(|a, b| b.cmp(a));
+    best.truncate(t);
     let mut kept: Vec<(usize, usize)> = Vec::with_capacity(k);
     let (_, ih, iw) = img.data.dim();
     let mut out = Vec::with_capacity(k);
-    for i in idx {
+    for Candidate { v, i } in best {
         if out.len() == k {
             break;
         }
@@ -114,7 +182,7 @@ pub fn channel_hits(
             || region.0 + region.2 as isize > ih as isize
             || region.1 + region.3 as isize > iw as isize;
         out.push(Hit {
-            response: map[i],
+            response: v,
             path: path.to_string(),
             y,
             x,
@@ -131,4 +199,74 @@ pub fn merge(best: &mut Vec<Hit>, new: Vec<Hit>, k: usize) {
     best.extend(new);
     best.sort_by(order);
     best.truncate(k);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::image_io::{ImageMeta, LoadedImage};
+
+    /// The rule as stated: every finite sample in order, largest first.
+    fn plain(map: &[f32], w: usize, k: usize, sep: (usize, usize)) -> Vec<(usize, usize)> {
+        let mut idx: Vec<usize> = (0..map.len()).filter(|&i| map[i].is_finite()).collect();
+        idx.sort_by(|a, b| map[*b].total_cmp(&map[*a]).then(a.cmp(b)));
+        let mut kept: Vec<(usize, usize)> = Vec::new();
+        for i in idx {
+            let (y, x) = (i / w, i % w);
+            if kept.len() < k
+                && !kept
+                    .iter()
+                    .any(|(a, b)| y.abs_diff(*a) < sep.0 && x.abs_diff(*b) < sep.1)
+            {
+                kept.push((y, x));
+            }
+        }
+        kept
+    }
+
+    #[test]
+    fn bounded_candidates_give_the_hits_of_the_whole_map() {
+        let (h, w) = (150, 97);
+        let img = LoadedImage {
+            data: ndarray::Array3::zeros((1, h, w)),
+            channel_names: vec!["luma".into()],
+            meta: ImageMeta::default(),
+        };
+        let mut seed = 3u64;
+        let mut next = || {
+            seed = seed
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (seed >> 40) as f32 / (1u64 << 24) as f32
+        };
+        // Smooth hills (neighbours of a peak are high too), plateaus of equal
+        // values, a NaN, and plain noise.
+        let hills: Vec<f32> = (0..h * w)
+            .map(|i| {
+                let (y, x) = ((i / w) as f32, (i % w) as f32);
+                (y / 7.0).sin() * (x / 5.0).cos() + 0.01 * next()
+            })
+            .collect();
+        let mut plateaus: Vec<f32> = (0..h * w).map(|i| ((i / w / 10) % 3) as f32).collect();
+        plateaus[77] = f32::NAN;
+        let noise: Vec<f32> = (0..h * w).map(|_| next()).collect();
+        for map in [&hills, &plateaus, &noise] {
+            for (k, size) in [(1, 1), (5, 3), (12, 9), (40, 2)] {
+                let f = ReceptiveField {
+                    size,
+                    jump: 1,
+                    offset: size / 2,
+                };
+                let got: Vec<(usize, usize)> = channel_hits(map, w, k, (f, f), &img, "m")
+                    .iter()
+                    .map(|h| (h.y, h.x))
+                    .collect();
+                assert_eq!(
+                    got,
+                    plain(map, w, k, separation((f, f))),
+                    "k {k}, field {size}"
+                );
+            }
+        }
+    }
 }
