@@ -7,6 +7,7 @@
 //! (all images).
 
 use std::path::PathBuf;
+use std::sync::Mutex;
 
 use crate::border::PadMode;
 use crate::engine::Engine;
@@ -14,9 +15,9 @@ use crate::error::Error;
 use crate::image_io::read_image;
 use crate::jobs::borders::output as bo;
 use crate::jobs::borders::study;
-use crate::jobs::inputs::expand_inputs;
+use crate::jobs::inputs::{expand_inputs, InputItem};
 use crate::jobs::tables::{number, optional_number, write_csv};
-use crate::jobs::{thread_pool, Observer, Stop};
+use crate::jobs::{for_each_parallel, thread_pool, Observer, Stop};
 use crate::stage::RecipeSpec;
 
 /// Everything a border study needs.
@@ -64,94 +65,53 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
     let pool = thread_pool(job.jobs)?;
     std::fs::create_dir_all(&job.out_dir).map_err(|e| Error::io(&job.out_dir, e))?;
     let out = &job.out_dir;
+    obs.begin(items.len());
+    // Images in flight at once, each its rows, curves and table; gathered by
+    // index, so the tables come out in input order whatever finishes first.
+    let results: Mutex<Vec<Option<Result<ImageResult, Error>>>> =
+        Mutex::new((0..items.len()).map(|_| None).collect());
+    for_each_parallel(&items, job.jobs, &job.stop, |i, item| {
+        let r = pool.install(|| one_image(job, item));
+        match &r {
+            Ok(done) => obs.report(&done.text),
+            Err(e) => obs.input_failed(e),
+        }
+        results.lock().unwrap_or_else(|p| p.into_inner())[i] = Some(r);
+        obs.advance();
+    });
+    obs.end();
     let (mut rows, mut bands, mut summary_rows) = (Vec::new(), Vec::new(), Vec::new());
     let mut all_curves: Vec<(PadMode, Vec<f64>, usize)> = Vec::new();
     let (mut ok, mut failed) = (0, 0);
-    obs.begin(items.len());
-    for item in &items {
-        if job.stop.requested().is_some() {
-            break;
-        }
-        let path = item.rel_string();
-        let result = pool.install(|| -> Result<(), Error> {
-            if let Some(p) = &item.problem {
-                return Err(Error::decode(&item.source, p.clone()));
-            }
-            let img = read_image(&item.source, &job.spec.input)?;
-            let recipe = job.spec.recipe_for(&img.channel_names)?;
-            let names = recipe.channel_names(img.data.dim().0);
-            let st = study(
-                &recipe,
-                img.data.view(),
-                &names,
-                &job.modes,
-                job.tolerance,
-                job.crop,
-                job.engine,
-            )
-            .map_err(|e| e.in_file(&item.source))?;
-            let summary = bo::summarise(&st);
-            obs.report(&bo::summary_text(&path, &st, &summary));
-            let best = bo::best(&summary);
-            for (i, m) in summary.iter().enumerate() {
-                summary_rows.push(vec![
-                    path.clone(),
-                    m.mode.name().to_string(),
-                    m.band.to_string(),
-                    number(m.mean_dev),
-                    number(m.max_dev),
-                    optional_number(m.crop_mean),
-                    optional_number(m.crop_max),
-                    (Some(i) == best).to_string(),
-                ]);
-            }
-            bo::borders_rows(&path, &st, &mut rows);
-            bo::band_rows(&path, &st, &mut bands);
-            let stem = item.stem_path();
-            bo::write_difference_views(&out.join("views").join(&stem), &st, &job.modes)?;
-            let curves = bo::curves(&st);
-            let plot = item.output_file(&out.join("plots"), "png");
-            let what = if job.crop.is_some() {
-                "crop study: error against the real surroundings"
-            } else {
-                "deviation from the median of all modes"
-            };
-            bo::write_plot(
-                &plot,
-                &format!("{path}: {what}"),
-                "mean |error| (response units)",
-                &curves,
-            )?;
-            for (m, pts) in curves {
-                let pts: Vec<f64> = pts
-                    .iter()
-                    .map(|p| if p.is_finite() { *p } else { 0.0 })
-                    .collect();
-                match all_curves.iter_mut().find(|(mm, _, _)| *mm == m) {
-                    Some((_, acc, n)) => {
-                        if acc.len() < pts.len() {
-                            acc.resize(pts.len(), 0.0);
-                        }
-                        for (a, p) in acc.iter_mut().zip(&pts) {
-                            *a += p;
-                        }
-                        *n += 1;
+    for r in results
+        .into_inner()
+        .unwrap_or_else(|p| p.into_inner())
+        .into_iter()
+        .flatten()
+    {
+        let Ok(done) = r else {
+            failed += 1;
+            continue;
+        };
+        ok += 1;
+        rows.extend(done.rows);
+        bands.extend(done.bands);
+        summary_rows.extend(done.summary);
+        for (m, pts) in done.curves {
+            match all_curves.iter_mut().find(|(mm, _, _)| *mm == m) {
+                Some((_, acc, n)) => {
+                    if acc.len() < pts.len() {
+                        acc.resize(pts.len(), 0.0);
                     }
-                    None => all_curves.push((m, pts, 1)),
+                    for (a, p) in acc.iter_mut().zip(&pts) {
+                        *a += p;
+                    }
+                    *n += 1;
                 }
-            }
-            Ok(())
-        });
-        match result {
-            Ok(()) => ok += 1,
-            Err(e) => {
-                failed += 1;
-                obs.input_failed(&e.in_file(&item.source));
+                None => all_curves.push((m, pts, 1)),
             }
         }
-        obs.advance();
     }
-    obs.end();
     write_csv(
         &out.join("borders.csv"),
         &[
@@ -198,5 +158,90 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
     Ok(BordersSummary {
         studied: ok,
         failed,
+    })
+}
+
+/// What one image of a study gives.
+struct ImageResult {
+    text: String,
+    rows: Vec<Vec<String>>,
+    bands: Vec<Vec<String>>,
+    summary: Vec<Vec<String>>,
+    curves: Vec<(PadMode, Vec<f64>)>,
+}
+
+/// Studies one image and writes its views and plot.
+fn one_image(job: &BordersJob, item: &InputItem) -> Result<ImageResult, Error> {
+    let out = &job.out_dir;
+    let path = item.rel_string();
+    if let Some(p) = &item.problem {
+        return Err(Error::decode(&item.source, p.clone()));
+    }
+    let img = read_image(&item.source, &job.spec.input)?;
+    let recipe = job.spec.recipe_for(&img.channel_names)?;
+    let names = recipe.channel_names(img.data.dim().0);
+    let st = study(
+        &recipe,
+        img.data.view(),
+        &names,
+        &job.modes,
+        job.tolerance,
+        job.crop,
+        job.engine,
+    )
+    .map_err(|e| e.in_file(&item.source))?;
+    let summary = bo::summarise(&st);
+    let text = bo::summary_text(&path, &st, &summary);
+    let best = bo::best(&summary);
+    let summary_rows = summary
+        .iter()
+        .enumerate()
+        .map(|(i, m)| {
+            vec![
+                path.clone(),
+                m.mode.name().to_string(),
+                m.band.to_string(),
+                number(m.mean_dev),
+                number(m.max_dev),
+                optional_number(m.crop_mean),
+                optional_number(m.crop_max),
+                (Some(i) == best).to_string(),
+            ]
+        })
+        .collect();
+    let (mut rows, mut bands) = (Vec::new(), Vec::new());
+    bo::borders_rows(&path, &st, &mut rows);
+    bo::band_rows(&path, &st, &mut bands);
+    let stem = item.stem_path();
+    bo::write_difference_views(&out.join("views").join(&stem), &st, &job.modes)?;
+    let curves = bo::curves(&st);
+    let plot = item.output_file(&out.join("plots"), "png");
+    let what = if job.crop.is_some() {
+        "crop study: error against the real surroundings"
+    } else {
+        "deviation from the median of all modes"
+    };
+    bo::write_plot(
+        &plot,
+        &format!("{path}: {what}"),
+        "mean |error| (response units)",
+        &curves,
+    )?;
+    let curves = curves
+        .into_iter()
+        .map(|(m, pts)| {
+            let pts = pts
+                .iter()
+                .map(|p| if p.is_finite() { *p } else { 0.0 })
+                .collect();
+            (m, pts)
+        })
+        .collect();
+    Ok(ImageResult {
+        text,
+        rows,
+        bands,
+        summary: summary_rows,
+        curves,
     })
 }

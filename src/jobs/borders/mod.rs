@@ -1,7 +1,8 @@
 //! The border study: how much the pad mode changes a recipe's maps, and how far in.
 //!
 //! **Modes study.** The recipe runs once per pad mode (every conv stage takes that
-//! mode). At each output pixel the median over modes is the reference; a mode's
+//! mode), on the ring of outputs along the edges where modes can differ (the
+//! predicted band plus a margin; [`ring`]): off it they all agree. At each output pixel the median over modes is the reference; a mode's
 //! deviation is |Y_mode − median|. A mode's band is 1 + the largest distance from
 //! the nearest edge at which its deviation exceeds the tolerance; the channel's
 //! band is the largest over modes, reported for each edge (each pixel counts for
@@ -23,10 +24,14 @@
 
 mod job;
 pub mod output;
+mod ring;
+
+pub use ring::Ring;
+use ring::{ring_outputs, Reach};
 
 pub use job::{run_borders, BordersJob, BordersSummary};
 
-use ndarray::{s, Array3, ArrayView3};
+use ndarray::{s, ArrayView3};
 
 use crate::border::PadMode;
 use crate::engine::Engine;
@@ -81,14 +86,16 @@ pub fn edge_distance(y: usize, x: usize, h: usize, w: usize) -> (usize, usize) {
     (d[best], best)
 }
 
-/// Per-distance statistics of |a − b| over an h × w plane.
-pub fn by_distance(a: &[f32], b: &[f32], h: usize, w: usize) -> Vec<DistanceStat> {
-    let mut v = vec![DistanceStat::default(); h.min(w).div_ceil(2)];
-    for y in 0..h {
-        for x in 0..w {
-            let (d, _) = edge_distance(y, x, h, w);
-            let e = (a[y * w + x] as f64 - b[y * w + x] as f64).abs();
-            let s = &mut v[d];
+/// Per-distance statistics of |a − b| over channel `k` of two rings of one
+/// layout, for distances below the ring's width (every pixel at such a
+/// distance is on the ring).
+pub fn by_distance(a: &Ring, b: &Ring, k: usize) -> Vec<DistanceStat> {
+    let (_, h, w) = a.shape();
+    let mut v = vec![DistanceStat::default(); h.min(w).div_ceil(2).min(a.width())];
+    for (y, x) in a.positions() {
+        let (d, _) = edge_distance(y, x, h, w);
+        if let Some(s) = v.get_mut(d) {
+            let e = (a.get(k, y, x) as f64 - b.get(k, y, x) as f64).abs();
             s.sum += e;
             s.max = s.max.max(e);
             s.count += 1;
@@ -97,74 +104,61 @@ pub fn by_distance(a: &[f32], b: &[f32], h: usize, w: usize) -> Vec<DistanceStat
     v
 }
 
-/// Band per edge (top, bottom, left, right): 1 + the largest distance from that
-/// edge at which |a − b| > tol. Each edge is measured away from the corners: the
-/// top band looks only at columns outside the left and right bands that `expect`
-/// predicts (and so on), so one edge's padding is not counted for another. Where
-/// the predicted side bands leave no such columns, each pixel counts for its
-/// nearest edge instead.
-pub fn band(a: &[f32], b: &[f32], h: usize, w: usize, tol: f32, expect: [usize; 4]) -> [usize; 4] {
+/// Band per edge (top, bottom, left, right) of channel `k`: 1 + the largest
+/// distance from that edge at which |a − b| > tol. Each edge is measured away
+/// from the corners: the top band looks only at columns outside the left and
+/// right bands that `expect` predicts (and so on), so one edge's padding is not
+/// counted for another. Where the predicted side bands leave no such columns,
+/// each pixel counts for its nearest edge instead. Only the ring is looked at:
+/// off it, outside every predicted band, all modes agree.
+pub fn band(a: &Ring, b: &Ring, k: usize, tol: f32, expect: [usize; 4]) -> [usize; 4] {
+    let (_, h, w) = a.shape();
     let [pt, pb, pl, pr] = expect;
     let cols_free = pl + pr < w;
     let rows_free = pt + pb < h;
     let mut out = [0usize; 4];
-    for y in 0..h {
-        for x in 0..w {
-            let diff = (a[y * w + x] - b[y * w + x]).abs();
-            if !(diff > tol || diff.is_nan()) {
-                continue;
+    for (y, x) in a.positions() {
+        let diff = (a.get(k, y, x) - b.get(k, y, x)).abs();
+        if !(diff > tol || diff.is_nan()) {
+            continue;
+        }
+        let central_col = x >= pl && x < w - pr;
+        let central_row = y >= pt && y < h - pb;
+        if cols_free && rows_free {
+            if central_col {
+                out[0] = out[0].max(if y < h - y { y + 1 } else { 0 });
+                out[1] = out[1].max(if h - 1 - y <= y { h - y } else { 0 });
             }
-            let central_col = x >= pl && x < w - pr;
-            let central_row = y >= pt && y < h - pb;
-            if cols_free && rows_free {
-                if central_col {
-                    out[0] = out[0].max(if y < h - y { y + 1 } else { 0 });
-                    out[1] = out[1].max(if h - 1 - y <= y { h - y } else { 0 });
-                }
-                if central_row {
-                    out[2] = out[2].max(if x < w - x { x + 1 } else { 0 });
-                    out[3] = out[3].max(if w - 1 - x <= x { w - x } else { 0 });
-                }
-                if !central_col && !central_row {
-                    // A corner pixel: it belongs to the nearer of its two edges.
-                    let (d, e) = edge_distance(y, x, h, w);
-                    out[e] = out[e].max(d + 1);
-                }
-            } else {
+            if central_row {
+                out[2] = out[2].max(if x < w - x { x + 1 } else { 0 });
+                out[3] = out[3].max(if w - 1 - x <= x { w - x } else { 0 });
+            }
+            if !central_col && !central_row {
+                // A corner pixel: it belongs to the nearer of its two edges.
                 let (d, e) = edge_distance(y, x, h, w);
                 out[e] = out[e].max(d + 1);
             }
+        } else {
+            let (d, e) = edge_distance(y, x, h, w);
+            out[e] = out[e].max(d + 1);
         }
     }
     out
 }
 
-/// Per-pixel median over modes (mean of the middle two for an even count).
-pub fn median_over(maps: &[Array3<f32>]) -> Array3<f32> {
-    let mut med = maps[0].clone();
-    let mut vals = vec![0.0f32; maps.len()];
-    let views: Vec<&[f32]> = maps
-        .iter()
-        .map(|m| m.as_slice().expect("standard layout"))
-        .collect();
-    for (i, out) in med
-        .as_slice_mut()
-        .expect("standard layout")
-        .iter_mut()
-        .enumerate()
-    {
-        for (v, m) in vals.iter_mut().zip(&views) {
-            *v = m[i];
-        }
+/// Per-pixel median over rings of one layout (mean of the middle two for an
+/// even count).
+pub fn median_over(rings: &[Ring]) -> Ring {
+    let n = rings.len();
+    rings[0].map(|k, y, x| {
+        let mut vals: Vec<f32> = rings.iter().map(|r| r.get(k, y, x)).collect();
         vals.sort_by(f32::total_cmp);
-        let n = vals.len();
-        *out = if n % 2 == 1 {
+        if n % 2 == 1 {
             vals[n / 2]
         } else {
             0.5 * (vals[n / 2 - 1] + vals[n / 2])
-        };
-    }
-    med
+        }
+    })
 }
 
 /// Results for one channel of one image.
@@ -188,16 +182,21 @@ pub struct ImageStudy {
     pub shape: (usize, usize, usize),
     /// Per channel.
     pub channels: Vec<ChannelStudy>,
-    /// Maps per mode (full image), in the order of `modes`.
-    pub maps: Vec<Array3<f32>>,
-    /// The per-pixel median over modes.
-    pub median: Array3<f32>,
+    /// Maps per mode on the ring where modes can differ, in the order of `modes`.
+    pub maps: Vec<Ring>,
+    /// The per-pixel median over modes, on the same ring.
+    pub median: Ring,
     /// With a crop study: whether the truth was free of the full image's own
     /// border effects (the crop is at least the predicted band).
     pub crop_truth_clean: Option<bool>,
 }
 
-/// Runs both studies on one input (`c × h × w`).
+/// Output pixels beyond the predicted band that are still reported (the
+/// tables show a few distances past the widest band).
+pub const MARGIN: usize = 4;
+
+/// Runs both studies on one input (`c × h × w`); every mode is computed only
+/// on the ring of outputs the predicted band and [`MARGIN`] cover ([`ring`]).
 pub fn study(
     recipe: &Recipe,
     input: ArrayView3<f32>,
@@ -207,21 +206,17 @@ pub fn study(
     crop: Option<usize>,
     engine: Engine,
 ) -> Result<ImageStudy, Error> {
+    use rayon::prelude::*;
     if modes.is_empty() {
         return Err(Error::Shape("no pad modes to compare".into()));
     }
     let (_, h, w) = input.dim();
-    let plans: Vec<Plan> = modes
-        .iter()
-        .map(|m| Plan::new(&with_mode(recipe, *m), input.dim(), engine))
-        .collect::<Result<_, _>>()?;
-    let maps: Vec<Array3<f32>> = plans
-        .iter()
-        .map(|p| p.run(input))
-        .collect::<Result<_, _>>()?;
-    let median = median_over(&maps);
-    let (oc, oh, ow) = median.dim();
-    let predicted: Vec<[usize; 4]> = plans[0]
+    let recipes: Vec<Recipe> = modes.iter().map(|m| with_mode(recipe, *m)).collect();
+    // Sizes and fields do not depend on the pad mode: one plan says them.
+    let plan = Plan::new(recipe, input.dim(), engine)?;
+    let (oc, oh, ow) = plan.output_shape();
+    let reach = (Reach::of(&plan, true), Reach::of(&plan, false));
+    let predicted: Vec<[usize; 4]> = plan
         .fields()
         .iter()
         .map(|(fr, fc)| {
@@ -238,13 +233,16 @@ pub fn study(
             a[3].max(p[3]),
         ]
     });
+    let d = widest.iter().copied().max().unwrap_or(0) + MARGIN;
+    let maps: Vec<Ring> = recipes
+        .par_iter()
+        .map(|r| ring_outputs(r, input, reach, (oc, oh, ow), (0, 0), (oh, ow), d, engine))
+        .collect::<Result<_, _>>()?;
+    let median = median_over(&maps);
     let [pt, pb, pl, pr] = widest;
-    let plane = |a: &Array3<f32>, k: usize| -> Vec<f32> {
-        a.index_axis(ndarray::Axis(0), k).iter().copied().collect()
-    };
     let crop_runs = match crop {
         Some(n) => {
-            let (runs, (dy, dx, gh, gw)) = crop_study(recipe, input, &median, modes, n, engine)?;
+            let (runs, (dy, dx, gh, gw)) = crop_study(&recipes, modes, input, n, d, engine)?;
             // The truth saw only real pixels if the window's outputs lie inside the
             // full image's mode-independent region.
             let clean = dy >= pt && dy + gh + pb <= oh && dx >= pl && dx + gw + pr <= ow;
@@ -254,29 +252,24 @@ pub fn study(
     };
     let mut channels = Vec::with_capacity(oc);
     for (k, expect) in predicted.iter().copied().enumerate().take(oc) {
-        let med = plane(&median, k);
         let mut band_all = [0usize; 4];
         let mut per_mode = Vec::with_capacity(modes.len());
         for (m, map) in modes.iter().zip(&maps) {
-            let y = plane(map, k);
-            let b = band(&y, &med, oh, ow, tol, expect);
+            let b = band(map, &median, k, tol, expect);
             for e in 0..4 {
                 band_all[e] = band_all[e].max(b[e]);
             }
             per_mode.push((
                 *m,
                 b.into_iter().max().unwrap_or(0),
-                by_distance(&y, &med, oh, ow),
+                by_distance(map, &median, k),
             ));
         }
         let crop_k = crop_runs
             .as_ref()
             .map(|(runs, _)| {
                 runs.iter()
-                    .map(|(m, got, truth)| {
-                        let (_, ch, cw) = got.dim();
-                        (*m, by_distance(&plane(got, k), &plane(truth, k), ch, cw))
-                    })
+                    .map(|(m, got, truth)| (*m, by_distance(got, truth, k)))
                     .collect()
             })
             .unwrap_or_default();
@@ -298,23 +291,20 @@ pub fn study(
     })
 }
 
-/// For each mode: (mode, window result, truth over the window); and where the
-/// window's outputs sit in the full output (dy, dx, height, width).
+/// For each mode: (mode, the window's result, the truth over the window), both
+/// on the window's ring `d` wide; and where the window's outputs sit in the
+/// full output (dy, dx, height, width). The truth is the median over modes of
+/// the full image's outputs there (far enough inside, they all agree).
 #[allow(clippy::type_complexity)]
 fn crop_study(
-    recipe: &Recipe,
-    input: ArrayView3<f32>,
-    median: &Array3<f32>,
+    recipes: &[Recipe],
     modes: &[PadMode],
+    input: ArrayView3<f32>,
     n: usize,
+    d: usize,
     engine: Engine,
-) -> Result<
-    (
-        Vec<(PadMode, Array3<f32>, Array3<f32>)>,
-        (usize, usize, usize, usize),
-    ),
-    Error,
-> {
+) -> Result<(Vec<(PadMode, Ring, Ring)>, (usize, usize, usize, usize)), Error> {
+    use rayon::prelude::*;
     let (c, h, w) = input.dim();
     if 2 * n >= h || 2 * n >= w {
         return Err(Error::Shape(format!(
@@ -322,12 +312,9 @@ fn crop_study(
         )));
     }
     let window = input.slice(s![.., n..h - n, n..w - n]);
-    let (fr, fc) = Plan::new(recipe, (c, h, w), engine)?.field();
-    let window_plans: Vec<Plan> = modes
-        .iter()
-        .map(|m| Plan::new(&with_mode(recipe, *m), window.dim(), engine))
-        .collect::<Result<_, _>>()?;
-    let (wr, wc) = window_plans[0].field();
+    let full = Plan::new(&recipes[0], (c, h, w), engine)?;
+    let win = Plan::new(&recipes[0], window.dim(), engine)?;
+    let ((fr, fc), (wr, wc)) = (full.field(), win.field());
     // Window output y covers input rows from n + y·J − P_w; full output y' from y'·J − P_f.
     let shift = |f: ReceptiveField, wf: ReceptiveField| -> Result<usize, Error> {
         let num = (n + f.offset) as isize - wf.offset as isize;
@@ -341,22 +328,32 @@ fn crop_study(
         Ok(num as usize / f.jump)
     };
     let (dy, dx) = (shift(fr, wr)?, shift(fc, wc)?);
-    let (_, fh, fw) = median.dim();
-    let mut out = Vec::with_capacity(modes.len());
-    let mut placed = (dy, dx, 0, 0);
-    for (m, plan) in modes.iter().zip(&window_plans) {
-        let got = plan.run(window)?;
-        let (_, gh, gw) = got.dim();
-        if dy + gh > fh || dx + gw > fw {
-            return Err(Error::Shape(format!(
-                "--crop {n}: the window's outputs do not fit inside the full image's"
-            )));
-        }
-        // The truth: the full image's result (median over modes; far enough inside
-        // they all agree) over the same outputs.
-        let truth = median.slice(s![.., dy..dy + gh, dx..dx + gw]).to_owned();
-        placed = (dy, dx, gh, gw);
-        out.push((*m, got.as_standard_layout().into_owned(), truth));
+    let (_, fh, fw) = full.output_shape();
+    let (wc_, gh, gw) = win.output_shape();
+    if dy + gh > fh || dx + gw > fw {
+        return Err(Error::Shape(format!(
+            "--crop {n}: the window's outputs do not fit inside the full image's"
+        )));
     }
-    Ok((out, placed))
+    let full_reach = (Reach::of(&full, true), Reach::of(&full, false));
+    let win_reach = (Reach::of(&win, true), Reach::of(&win, false));
+    let shape = (wc_, gh, gw);
+    let (got, truths): (Vec<Ring>, Vec<Ring>) = recipes
+        .par_iter()
+        .map(|r| -> Result<(Ring, Ring), Error> {
+            Ok((
+                ring_outputs(r, window, win_reach, shape, (0, 0), (gh, gw), d, engine)?,
+                ring_outputs(r, input, full_reach, shape, (dy, dx), (fh, fw), d, engine)?,
+            ))
+        })
+        .collect::<Result<Vec<_>, _>>()?
+        .into_iter()
+        .unzip();
+    let truth = median_over(&truths);
+    let out = modes
+        .iter()
+        .zip(got)
+        .map(|(m, g)| (*m, g, truth.clone()))
+        .collect();
+    Ok((out, (dy, dx, gh, gw)))
 }

@@ -6,7 +6,7 @@
 use std::fmt::Write as _;
 use std::path::Path;
 
-use image::{Rgb, RgbImage};
+use image::{GrayImage, Luma, Rgb, RgbImage};
 use plotters::prelude::*;
 
 use crate::border::PadMode;
@@ -14,7 +14,8 @@ use crate::error::Error;
 use crate::jobs::borders::{ChannelStudy, DistanceStat, ImageStudy};
 use crate::jobs::tables::number;
 use crate::render::sheet::draw_text;
-use crate::render::write_png;
+use crate::render::view::ViewImage;
+use crate::render::{write_png, write_view, ViewPng};
 
 /// Colour and dash of each mode's line in plots; tapmap's own choice.
 pub fn mode_style(m: PadMode) -> ([u8; 3], bool) {
@@ -210,10 +211,28 @@ pub fn band_rows(path: &str, st: &ImageStudy, out: &mut Vec<Vec<String>>) {
     }
 }
 
-const OUTLINE_MEASURED: Rgb<u8> = Rgb([230, 150, 40]);
-const OUTLINE_PREDICTED: Rgb<u8> = Rgb([40, 170, 190]);
+/// Grey levels of difference views; the two levels above are the outline colours.
+const GREYS: u8 = 253;
+/// Palette index of the measured band's outline (amber).
+const MEASURED: u8 = 254;
+/// Palette index of the predicted band's outline (cyan).
+const PREDICTED: u8 = 255;
 
-fn outline(img: &mut RgbImage, inset: [usize; 4], colour: Rgb<u8>) {
+/// The difference views' palette: grey 0–253 (black to white), then amber and
+/// cyan for the outlines.
+fn palette() -> Vec<[u8; 3]> {
+    let mut p: Vec<[u8; 3]> = (0..=GREYS as u32)
+        .map(|i| {
+            let v = (i * 255 / GREYS as u32) as u8;
+            [v, v, v]
+        })
+        .collect();
+    p.push([230, 150, 40]);
+    p.push([40, 170, 190]);
+    p
+}
+
+fn outline(img: &mut GrayImage, inset: [usize; 4], colour: u8) {
     let (w, h) = (img.width() as usize, img.height() as usize);
     let [t, b, l, r] = inset;
     if t + b >= h || l + r >= w || inset == [0; 4] {
@@ -221,67 +240,66 @@ fn outline(img: &mut RgbImage, inset: [usize; 4], colour: Rgb<u8>) {
     }
     let (y0, y1, x0, x1) = (t, h - 1 - b, l, w - 1 - r);
     for x in x0..=x1 {
-        img.put_pixel(x as u32, y0 as u32, colour);
-        img.put_pixel(x as u32, y1 as u32, colour);
+        img.put_pixel(x as u32, y0 as u32, Luma([colour]));
+        img.put_pixel(x as u32, y1 as u32, Luma([colour]));
     }
     for y in y0..=y1 {
-        img.put_pixel(x0 as u32, y as u32, colour);
-        img.put_pixel(x1 as u32, y as u32, colour);
+        img.put_pixel(x0 as u32, y as u32, Luma([colour]));
+        img.put_pixel(x1 as u32, y as u32, Luma([colour]));
     }
 }
 
-/// Difference views of one image: per channel and mode, |Y_mode − median| in grey
-/// (0 black, the channel's largest deviation over all modes white), the measured
-/// band outlined in amber and the predicted band in cyan. Returns files written.
+/// Difference views of one image: per channel and mode, |Y_mode − median| in
+/// grey (0 black, the channel's largest deviation over all modes white; 254
+/// levels), the measured band outlined in amber and the predicted band in cyan,
+/// as indexed PNG. Off the ring the modes agree, so the view is black there.
+/// Channels and modes are drawn in parallel. Returns the files written.
 pub fn write_difference_views(
     dir: &Path,
     st: &ImageStudy,
     modes: &[PadMode],
 ) -> Result<usize, Error> {
-    let (_, oh, ow) = st.shape;
-    let mut n = 0;
-    for (k, ch) in st.channels.iter().enumerate() {
-        let med = st.median.index_axis(ndarray::Axis(0), k);
-        let diffs: Vec<Vec<f32>> = st
-            .maps
-            .iter()
-            .map(|m| {
-                m.index_axis(ndarray::Axis(0), k)
-                    .iter()
-                    .zip(med.iter())
-                    .map(|(a, b)| (a - b).abs())
-                    .collect()
-            })
-            .collect();
-        let hi = diffs
-            .iter()
-            .flatten()
-            .copied()
-            .filter(|v| v.is_finite())
-            .fold(0.0f32, f32::max);
-        let hi = if hi > 0.0 { hi } else { 1.0 };
-        let sub = dir.join(format!("{k:02}-{}", crate::jobs::safe_name(&ch.name)));
-        std::fs::create_dir_all(&sub).map_err(|e| Error::io(&sub, e))?;
-        for (m, d) in modes.iter().zip(&diffs) {
-            let mut img = RgbImage::from_fn(ow as u32, oh as u32, |x, y| {
-                let v =
-                    ((d[y as usize * ow + x as usize] / hi).clamp(0.0, 1.0) * 255.0).round() as u8;
-                Rgb([v, v, v])
-            });
-            outline(&mut img, ch.predicted, OUTLINE_PREDICTED);
-            outline(&mut img, ch.band, OUTLINE_MEASURED);
-            let p = sub.join(format!("{}.png", m.name()));
-            write_png(
-                &p,
-                img.as_raw(),
-                img.width(),
-                img.height(),
-                image::ExtendedColorType::Rgb8,
-            )?;
-            n += 1;
-        }
-    }
-    Ok(n)
+    use rayon::prelude::*;
+    let (oc, oh, ow) = st.shape;
+    let table = palette();
+    let jobs: Vec<(usize, usize)> = (0..oc)
+        .flat_map(|k| (0..modes.len()).map(move |i| (k, i)))
+        .collect();
+    let hi: Vec<f32> = (0..oc)
+        .map(|k| {
+            let hi = st
+                .maps
+                .iter()
+                .flat_map(|m| {
+                    m.positions()
+                        .map(move |(y, x)| (m.get(k, y, x) - st.median.get(k, y, x)).abs())
+                })
+                .filter(|v| v.is_finite())
+                .fold(0.0f32, f32::max);
+            if hi > 0.0 {
+                hi
+            } else {
+                1.0
+            }
+        })
+        .collect();
+    jobs.par_iter()
+        .try_for_each(|&(k, i)| -> Result<(), Error> {
+            let ch = &st.channels[k];
+            let map = &st.maps[i];
+            let mut img = GrayImage::new(ow as u32, oh as u32);
+            for (y, x) in map.positions() {
+                let d = (map.get(k, y, x) - st.median.get(k, y, x)).abs();
+                let v = ((d / hi[k]).clamp(0.0, 1.0) * GREYS as f32).round() as u8;
+                img.put_pixel(x as u32, y as u32, Luma([v]));
+            }
+            outline(&mut img, ch.predicted, PREDICTED);
+            outline(&mut img, ch.band, MEASURED);
+            let sub = dir.join(format!("{k:02}-{}", crate::jobs::safe_name(&ch.name)));
+            let p = sub.join(format!("{}.png", modes[i].name()));
+            write_view(&p, &ViewImage::Indexed(img), &table, ViewPng::Fast)
+        })?;
+    Ok(jobs.len())
 }
 
 /// Mean error by distance for one image, averaged over channels: the crop study's
