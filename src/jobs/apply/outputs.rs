@@ -72,7 +72,7 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
             .plans
             .get(cx.spec, &img.channel_names, img.data.dim(), cx.engine)?;
         let (_, h, w) = img.data.dim();
-        let need = plan.peak_bytes();
+        let need = held_bytes(cx, &plan, img.data.len());
         if need > cx.spec.input.limits.max_memory {
             return Err(Error::Limit {
                 path: Some(item.source.clone()),
@@ -125,6 +125,31 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
         stats,
         entry,
     }
+}
+
+/// Bytes an image holds at its busiest, beside what decoding it took (checked
+/// by the reader): its f32 planes all along, plus the larger of the recipe's
+/// busiest stage (input, padded copy, output) and the outputs' time: the maps,
+/// and for every map at once (they are drawn in parallel) its view levels and
+/// PNG, and its TIFF encoded in memory.
+fn held_bytes(cx: &ImageContext, plan: &Plan, planes: usize) -> u64 {
+    let (c, oh, ow) = plan.output_shape();
+    let per_map = (oh as u64).saturating_mul(ow as u64);
+    let maps = per_map.saturating_mul(c as u64).saturating_mul(4);
+    let mut writing = maps;
+    if cx.save.views || cx.save.sheets {
+        let level = if cx.view.depth16 { 2 } else { 1 };
+        writing = writing.saturating_add(per_map.saturating_mul(c as u64 * 2 * level));
+    }
+    if cx.save.sheets {
+        writing = writing.saturating_add(per_map.saturating_mul(c as u64 * 3));
+    }
+    if cx.save.tiff {
+        writing = writing.saturating_add(maps);
+    }
+    (planes as u64)
+        .saturating_mul(4)
+        .saturating_add(plan.peak_bytes().max(writing))
 }
 
 /// What one map of an image gave: the files written for it (each only once
