@@ -20,7 +20,9 @@
 //! 16 bits of the keys in those few buckets; the full key, so the exact value,
 //! follows. Both passes run in parallel over fixed chunks of the map, and sums
 //! are added chunk by chunk in order, so the result does not depend on the
-//! number of threads. Sums are accumulated in f64.
+//! number of threads. Sums are accumulated in f64; the variance comes from
+//! each chunk's squared deviations from its own mean, combined in chunk order
+//! (Chan, Golub & LeVeque 1983), so one pass over the map gives it.
 
 use rayon::prelude::*;
 
@@ -211,10 +213,10 @@ const SMALL: usize = 1 << 16;
 /// Computes the statistics of `values` (see the module header), in parallel
 /// on the current rayon pool. Both paths give the exact order statistics.
 pub fn map_stats(values: &[f32], threshold: Option<f32>) -> MapStats {
-    if values.len() <= SMALL {
-        small_stats(values, threshold)
-    } else {
+    if takes_histograms(values.len()) {
         histogram_stats(values, threshold)
+    } else {
+        small_stats(values, threshold)
     }
 }
 
@@ -252,174 +254,290 @@ fn small_stats(values: &[f32], threshold: Option<f32>) -> MapStats {
 
 /// The histogram path (see the module header).
 fn histogram_stats(values: &[f32], threshold: Option<f32>) -> MapStats {
-    let total = values.len().max(1) as f64;
-    // Pass one: per chunk its counts and sum (kept in order), one histogram
-    // per parallel task (integer counts: any grouping gives the same sums).
-    // Few enough tasks that their histograms cost little next to the counting.
-    let min_len = (values.len() / CHUNK / (4 * rayon::current_num_threads())).max(1);
-    let (firsts, hist) = values
-        .par_chunks(CHUNK)
-        .enumerate()
-        .with_min_len(min_len)
-        .fold(
-            || (Vec::new(), vec![0u32; 2 * BUCKETS]),
-            |(mut firsts, mut hist), (i, chunk)| {
-                firsts.push((i, first_pass(chunk, threshold, &mut hist)));
-                (firsts, hist)
-            },
-        )
-        .reduce(
-            || (Vec::new(), vec![0u32; 2 * BUCKETS]),
-            |(mut fa, mut ha), (fb, hb)| {
-                fa.extend(fb);
-                ha.iter_mut().zip(&hb).for_each(|(a, b)| *a += b);
-                (fa, ha)
-            },
-        );
-    let hist: Vec<u32> = hist[..BUCKETS]
-        .iter()
-        .zip(&hist[BUCKETS..])
-        .map(|(a, b)| a + b)
-        .collect();
-    let mut firsts = firsts;
-    // Chunk order fixes the order the sums are added in.
-    firsts.sort_by_key(|(i, _)| *i);
-    let n: usize = firsts.iter().map(|(_, f)| f.count).sum();
-    let zeros: usize = firsts.iter().map(|(_, f)| f.zeros).sum();
-    let above =
-        threshold.map(|_| firsts.iter().map(|(_, f)| f.above).sum::<usize>() as f64 / total);
-    let non_finite = values.len() - n;
-    if n == 0 {
-        return MapStats {
-            count: 0,
-            non_finite,
-            min: None,
-            max: None,
-            mean: None,
-            std: None,
-            p1: None,
-            p50: None,
-            p99: None,
-            zero_fraction: zeros as f64 / total,
-            above_fraction: above,
+    FirstPass::of(values, threshold).finish_with(values, &mut [] as &mut [u8], |_, _| {})
+}
+
+/// What pass one of the histogram path found over a whole map: everything but
+/// the order statistics, and where those lie. Pass two ([`FirstPass::finish_with`])
+/// reads the map once more, and can do a caller's own per-sample work on each
+/// chunk while it is in cache (a view's levels need the extremes pass one found).
+pub struct FirstPass {
+    threshold: bool,
+    total: usize,
+    n: usize,
+    zeros: usize,
+    above: usize,
+    min: f32,
+    max: f32,
+    mean: f64,
+    m2: f64,
+    /// The order statistics each percentile needs: (p, ⌊h⌋, h − ⌊h⌋).
+    wanted: Vec<(f64, usize, f64)>,
+    /// (rank, top bucket, rank inside the bucket).
+    located: Vec<(usize, usize, usize)>,
+    /// The top buckets pass two counts the low bits of.
+    buckets: Vec<usize>,
+    /// Per top bucket, its table in pass two, or `u8::MAX`.
+    slot: Vec<u8>,
+}
+
+/// Count, sum and squared deviations from its own mean of a chunk's finite
+/// samples (the chunk is in cache: the second look is cheap), combined across
+/// chunks in chunk order by Chan, Golub and LeVeque's update (The American
+/// Statistician 37(3), 1983): δ = mean_b − mean_a, M2 = M2_a + M2_b + δ²·n_a·n_b/n.
+fn combine(
+    (na, ma, m2a): (usize, f64, f64),
+    (nb, mb, m2b): (usize, f64, f64),
+) -> (usize, f64, f64) {
+    if na == 0 {
+        return (nb, mb, m2b);
+    }
+    if nb == 0 {
+        return (na, ma, m2a);
+    }
+    let n = na + nb;
+    let d = mb - ma;
+    (
+        n,
+        ma + d * nb as f64 / n as f64,
+        m2a + m2b + d * d * (na as f64) * (nb as f64) / n as f64,
+    )
+}
+
+impl FirstPass {
+    /// Pass one over `values`, in parallel.
+    pub fn of(values: &[f32], threshold: Option<f32>) -> FirstPass {
+        // Few enough tasks that their histograms cost little next to the counting.
+        let min_len = (values.len() / CHUNK / (4 * rayon::current_num_threads())).max(1);
+        let (firsts, hist) = values
+            .par_chunks(CHUNK)
+            .enumerate()
+            .with_min_len(min_len)
+            .fold(
+                || (Vec::new(), vec![0u32; 2 * BUCKETS]),
+                |(mut firsts, mut hist), (i, chunk)| {
+                    let f = first_pass(chunk, threshold, &mut hist);
+                    let m = if f.count > 0 {
+                        f.sum / f.count as f64
+                    } else {
+                        0.0
+                    };
+                    let m2 = deviations(chunk, m);
+                    firsts.push((i, f, m2));
+                    (firsts, hist)
+                },
+            )
+            .reduce(
+                || (Vec::new(), vec![0u32; 2 * BUCKETS]),
+                |(mut fa, mut ha), (fb, hb)| {
+                    fa.extend(fb);
+                    ha.iter_mut().zip(&hb).for_each(|(a, b)| *a += b);
+                    (fa, ha)
+                },
+            );
+        let hist: Vec<u32> = hist[..BUCKETS]
+            .iter()
+            .zip(&hist[BUCKETS..])
+            .map(|(a, b)| a + b)
+            .collect();
+        let mut firsts = firsts;
+        // Chunk order fixes the order sums and deviations are combined in.
+        firsts.sort_by_key(|(i, _, _)| *i);
+        let n: usize = firsts.iter().map(|(_, f, _)| f.count).sum();
+        let sum: f64 = firsts.iter().map(|(_, f, _)| f.sum).sum();
+        let (_, _, m2) = firsts
+            .iter()
+            .fold((0usize, 0.0f64, 0.0f64), |acc, (_, f, m2)| {
+                let m = if f.count > 0 {
+                    f.sum / f.count as f64
+                } else {
+                    0.0
+                };
+                combine(acc, (f.count, m, *m2))
+            });
+        let wanted: Vec<(f64, usize, f64)> = if n == 0 {
+            Vec::new()
+        } else {
+            [1.0, 50.0, 99.0]
+                .iter()
+                .map(|&p| {
+                    let h = (n - 1) as f64 * p / 100.0;
+                    (p, h.floor() as usize, h - h.floor())
+                })
+                .collect()
         };
+        let mut ranks: Vec<usize> = wanted
+            .iter()
+            .flat_map(|&(_, lo, frac)| {
+                let hi = if frac > 0.0 && lo + 1 < n { lo + 1 } else { lo };
+                [lo, hi]
+            })
+            .collect();
+        ranks.sort_unstable();
+        ranks.dedup();
+        let mut cumulative = Vec::with_capacity(BUCKETS + 1);
+        cumulative.push(0usize);
+        for c in &hist {
+            cumulative.push(cumulative.last().expect("seeded") + *c as usize);
+        }
+        let located: Vec<(usize, usize, usize)> = ranks
+            .iter()
+            .map(|&r| {
+                let b = cumulative.partition_point(|&c| c <= r) - 1;
+                (r, b, r - cumulative[b])
+            })
+            .collect();
+        let mut buckets: Vec<usize> = located.iter().map(|l| l.1).collect();
+        buckets.dedup();
+        let mut slot = vec![u8::MAX; BUCKETS];
+        for (i, &b) in buckets.iter().enumerate() {
+            slot[b] = i as u8;
+        }
+        FirstPass {
+            threshold: threshold.is_some(),
+            total: values.len(),
+            n,
+            zeros: firsts.iter().map(|(_, f, _)| f.zeros).sum(),
+            above: firsts.iter().map(|(_, f, _)| f.above).sum(),
+            min: firsts
+                .iter()
+                .map(|(_, f, _)| f.min)
+                .fold(f32::INFINITY, f32::min),
+            max: firsts
+                .iter()
+                .map(|(_, f, _)| f.max)
+                .fold(f32::NEG_INFINITY, f32::max),
+            mean: if n > 0 { sum / n as f64 } else { 0.0 },
+            m2,
+            wanted,
+            located,
+            buckets,
+            slot,
+        }
     }
-    let min = firsts
-        .iter()
-        .map(|(_, f)| f.min)
-        .fold(f32::INFINITY, f32::min);
-    let max = firsts
-        .iter()
-        .map(|(_, f)| f.max)
-        .fold(f32::NEG_INFINITY, f32::max);
-    let mean = firsts.iter().map(|(_, f)| f.sum).sum::<f64>() / n as f64;
 
-    // The order statistics each percentile needs, and where pass one puts them.
-    let wanted: Vec<(f64, usize, f64)> = [1.0, 50.0, 99.0]
-        .iter()
-        .map(|&p| {
-            let h = (n - 1) as f64 * p / 100.0;
-            (p, h.floor() as usize, h - h.floor())
-        })
-        .collect();
-    let mut ranks: Vec<usize> = wanted
-        .iter()
-        .flat_map(|&(_, lo, frac)| {
-            let hi = if frac > 0.0 && lo + 1 < n { lo + 1 } else { lo };
-            [lo, hi]
-        })
-        .collect();
-    ranks.sort_unstable();
-    ranks.dedup();
-    let mut cumulative = Vec::with_capacity(BUCKETS + 1);
-    cumulative.push(0usize);
-    for c in &hist {
-        cumulative.push(cumulative.last().expect("seeded") + *c as usize);
-    }
-    // (rank, top bucket, rank inside the bucket)
-    let located: Vec<(usize, usize, usize)> = ranks
-        .iter()
-        .map(|&r| {
-            let b = cumulative.partition_point(|&c| c <= r) - 1;
-            (r, b, r - cumulative[b])
-        })
-        .collect();
-    let mut buckets: Vec<usize> = located.iter().map(|l| l.1).collect();
-    buckets.dedup();
-    // Which low-bit table, if any, each top bucket counts into.
-    let mut slot = vec![u8::MAX; BUCKETS];
-    for (i, &b) in buckets.iter().enumerate() {
-        slot[b] = i as u8;
+    /// The smallest and largest finite samples (`None` when there are none).
+    pub fn extremes(&self) -> (Option<f64>, Option<f64>) {
+        let any = self.n > 0;
+        (
+            any.then_some(self.min as f64),
+            any.then_some(self.max as f64),
+        )
     }
 
-    // Pass two: squared deviations (in chunk order) and low-bit histograms of
-    // the wanted buckets.
-    let (mut devs, low) = values
-        .par_chunks(CHUNK)
-        .enumerate()
-        .with_min_len(min_len)
-        .fold(
-            || (Vec::new(), vec![0u32; BUCKETS * buckets.len()]),
-            |(mut devs, mut low), (i, chunk)| {
-                for &v in chunk {
-                    if v.is_finite() {
-                        let k = key(v);
-                        let s = slot[(k >> 16) as usize];
-                        if s != u8::MAX {
-                            low[s as usize * BUCKETS + (k & 0xFFFF) as usize] += 1;
-                        }
+    /// Pass two over the same `values`, in parallel chunks, calling `f` on each
+    /// chunk and its piece of `out` (chunks of the same length; `out` empty
+    /// for none) while the chunk is in cache; then the statistics.
+    pub fn finish_with<T: Send>(
+        self,
+        values: &[f32],
+        out: &mut [T],
+        f: impl Fn(&[f32], &mut [T]) + Sync,
+    ) -> MapStats {
+        let total = self.total.max(1) as f64;
+        let nb = self.buckets.len();
+        let slot = &self.slot;
+        let count_low = |low: &mut Vec<u32>, chunk: &[f32]| {
+            if nb == 0 {
+                return;
+            }
+            for &v in chunk {
+                if v.is_finite() {
+                    let k = key(v);
+                    let s = slot[(k >> 16) as usize];
+                    if s != u8::MAX {
+                        low[s as usize * BUCKETS + (k & 0xFFFF) as usize] += 1;
                     }
                 }
-                devs.push((i, deviations(chunk, mean)));
-                (devs, low)
-            },
-        )
-        .reduce(
-            || (Vec::new(), vec![0u32; BUCKETS * buckets.len()]),
-            |(mut da, mut la), (db, lb)| {
-                da.extend(db);
-                la.iter_mut().zip(&lb).for_each(|(a, b)| *a += b);
-                (da, la)
-            },
-        );
-    devs.sort_by_key(|(i, _)| *i);
-    let var = devs.iter().map(|(_, d)| d).sum::<f64>() / n as f64;
-    let value_at = |r: usize| -> f64 {
-        let &(_, b, inside) = located.iter().find(|l| l.0 == r).expect("located");
-        let i = buckets
-            .iter()
-            .position(|&x| x == b)
-            .expect("a wanted bucket");
-        let mut seen = 0usize;
-        for (lowbits, &c) in low[i * BUCKETS..(i + 1) * BUCKETS].iter().enumerate() {
-            seen += c as usize;
-            if seen > inside {
-                return unkey(((b as u32) << 16) | lowbits as u32) as f64;
             }
-        }
-        unreachable!("the bucket holds the rank")
-    };
-    let pct = |(_, lo, frac): (f64, usize, f64)| {
-        let x_lo = value_at(lo);
-        if frac == 0.0 || lo + 1 >= n {
-            x_lo
+        };
+        let min_len = (values.len() / CHUNK / (4 * rayon::current_num_threads())).max(1);
+        let init = || vec![0u32; BUCKETS * nb];
+        let merge = |mut a: Vec<u32>, b: Vec<u32>| {
+            a.iter_mut().zip(&b).for_each(|(x, y)| *x += y);
+            a
+        };
+        let low = if out.is_empty() {
+            values
+                .par_chunks(CHUNK)
+                .with_min_len(min_len)
+                .fold(init, |mut low, chunk| {
+                    count_low(&mut low, chunk);
+                    low
+                })
+                .reduce(init, merge)
         } else {
-            x_lo + frac * (value_at(lo + 1) - x_lo)
+            values
+                .par_chunks(CHUNK)
+                .zip(out.par_chunks_mut(CHUNK))
+                .with_min_len(min_len)
+                .fold(init, |mut low, (chunk, o)| {
+                    count_low(&mut low, chunk);
+                    f(chunk, o);
+                    low
+                })
+                .reduce(init, merge)
+        };
+        let n = self.n;
+        let above = self.threshold.then(|| self.above as f64 / total);
+        if n == 0 {
+            return MapStats {
+                count: 0,
+                non_finite: self.total,
+                min: None,
+                max: None,
+                mean: None,
+                std: None,
+                p1: None,
+                p50: None,
+                p99: None,
+                zero_fraction: self.zeros as f64 / total,
+                above_fraction: above,
+            };
         }
-    };
-    MapStats {
-        count: n,
-        non_finite,
-        min: Some(min as f64),
-        max: Some(max as f64),
-        mean: Some(mean),
-        std: Some(var.sqrt()),
-        p1: Some(pct(wanted[0])),
-        p50: Some(pct(wanted[1])),
-        p99: Some(pct(wanted[2])),
-        zero_fraction: zeros as f64 / total,
-        above_fraction: above,
+        let value_at = |r: usize| -> f64 {
+            let &(_, b, inside) = self.located.iter().find(|l| l.0 == r).expect("located");
+            let i = self
+                .buckets
+                .iter()
+                .position(|&x| x == b)
+                .expect("a wanted bucket");
+            let mut seen = 0usize;
+            for (lowbits, &c) in low[i * BUCKETS..(i + 1) * BUCKETS].iter().enumerate() {
+                seen += c as usize;
+                if seen > inside {
+                    return unkey(((b as u32) << 16) | lowbits as u32) as f64;
+                }
+            }
+            unreachable!("the bucket holds the rank")
+        };
+        let pct = |(_, lo, frac): (f64, usize, f64)| {
+            let x_lo = value_at(lo);
+            if frac == 0.0 || lo + 1 >= n {
+                x_lo
+            } else {
+                x_lo + frac * (value_at(lo + 1) - x_lo)
+            }
+        };
+        MapStats {
+            count: n,
+            non_finite: self.total - n,
+            min: Some(self.min as f64),
+            max: Some(self.max as f64),
+            mean: Some(self.mean),
+            std: Some((self.m2 / n as f64).sqrt()),
+            p1: Some(pct(self.wanted[0])),
+            p50: Some(pct(self.wanted[1])),
+            p99: Some(pct(self.wanted[2])),
+            zero_fraction: self.zeros as f64 / total,
+            above_fraction: above,
+        }
     }
+}
+
+/// Whether a map takes the histogram path (and so [`FirstPass`]).
+pub fn takes_histograms(len: usize) -> bool {
+    len > SMALL
 }
 
 /// Percentile `p` (0–100, clamped) of finite values by linear interpolation

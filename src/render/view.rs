@@ -137,8 +137,15 @@ pub fn mapping_from_extremes(
 /// The fraction x − ⌊x⌋ is exact in f64 for such x, so the result is too.
 #[inline(always)]
 fn round_non_negative(x: f64) -> f64 {
-    let i = x as i32 as f64;
-    i + if x - i >= 0.5 { 1.0 } else { 0.0 }
+    round_level(x) as f64
+}
+
+/// [`round_non_negative`] as a whole number, for the levels themselves: kept
+/// in integers from the conversion on, so the loops stay in vector registers.
+#[inline(always)]
+fn round_level(x: f64) -> i32 {
+    let i = x as i32;
+    i + i32::from(x - i as f64 >= 0.5)
 }
 
 /// Grey levels of `values` (see the module header), written without branches
@@ -173,37 +180,154 @@ fn diverging_body(values: &[f32], out: &mut [u8], lo: f64, hi: f64) {
     }
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn grey8_avx2(values: &[f32], out: &mut [u8], lo: f64, span: f64, d: f64) {
-    grey_body(values, out, lo, span, d, |x| x as u8)
+/// Whether `y`, about to be rounded, lies so near a half that a last-bit
+/// difference in how it was computed could change the result (the two rules
+/// differ by at most a few ulps of values below 65,536: under 1e-10).
+#[inline(always)]
+fn near_half(y: f64) -> bool {
+    let f = y - (y as i32 as f64);
+    (f - 0.5).abs() < 1e-9
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn diverging_avx2(values: &[f32], out: &mut [u8], lo: f64, hi: f64) {
-    diverging_body(values, out, lo, hi)
-}
-
-fn grey8(values: &[f32], out: &mut [u8], lo: f64, span: f64, d: f64) {
-    #[cfg(target_arch = "x86_64")]
-    if crate::engine::simd::avx2() {
-        // SAFETY: the CPU has AVX2 (checked at run time just above).
-        return unsafe { grey8_avx2(values, out, lo, span, d) };
+/// [`grey_body`] with a multiplication by d/span instead of a division by span:
+/// about three times faster, and the same level unless the value lies within
+/// 1e-9 of a half (the two differ by a few ulps, at most 1e-10 here), which it
+/// reports so that the caller recomputes with the exact rule.
+#[inline(always)]
+fn grey_fast_body(values: &[f32], out: &mut [u8], lo: f64, k: f64, d: f64) -> bool {
+    let mut near = false;
+    for (o, &v) in out.iter_mut().zip(values) {
+        let x = ((v as f64 - lo) * k).clamp(0.0, d);
+        let x = if v.is_finite() { x } else { 0.0 };
+        near |= near_half(x);
+        *o = round_level(x) as u8;
     }
-    grey_body(values, out, lo, span, d, |x| x as u8)
+    near
 }
 
+/// [`diverging_body`] with a multiplication by the end's reciprocal, reporting
+/// values near a half as [`grey_fast_body`] does.
+#[inline(always)]
+fn diverging_fast_body(values: &[f32], out: &mut [u8], lo: f64, hi: f64) -> bool {
+    let (pos_ok, neg_ok) = (hi > 0.0, lo < 0.0);
+    let (up_k, down_k) = (1.0 / hi, 1.0 / -lo);
+    let mut near = false;
+    for (o, &v) in out.iter_mut().zip(values) {
+        let x = v as f64;
+        let up = x >= 0.0;
+        let t = x * if up { up_k } else { down_k };
+        let t = if (up && pos_ok) || (!up && neg_ok) {
+            t
+        } else {
+            0.0
+        };
+        let y = 127.5 + 127.5 * t.clamp(-1.0, 1.0);
+        // Zero is exact under both rules (127.5, drawn as 128).
+        near |= v.is_finite() && t != 0.0 && near_half(y);
+        *o = if v.is_finite() {
+            round_level(y) as u8
+        } else {
+            128
+        };
+    }
+    near
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn grey8_avx2(values: &[f32], out: &mut [u8], lo: f64, k: f64, d: f64) -> bool {
+    grey_fast_body(values, out, lo, k, d)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn diverging_avx2(values: &[f32], out: &mut [u8], lo: f64, hi: f64) -> bool {
+    diverging_fast_body(values, out, lo, hi)
+}
+
+/// 8-bit grey levels of a chunk: the fast rule, and the exact one where a
+/// value lies near a half.
+fn grey8(values: &[f32], out: &mut [u8], lo: f64, span: f64, d: f64) {
+    let k = d / span;
+    #[cfg(target_arch = "x86_64")]
+    let near = if crate::engine::simd::avx2() {
+        // SAFETY: the CPU has AVX2 (checked at run time just above).
+        unsafe { grey8_avx2(values, out, lo, k, d) }
+    } else {
+        grey_fast_body(values, out, lo, k, d)
+    };
+    #[cfg(not(target_arch = "x86_64"))]
+    let near = grey_fast_body(values, out, lo, k, d);
+    if near {
+        grey_body(values, out, lo, span, d, |x| x as u8);
+    }
+}
+
+/// Diverging table indices of a chunk: the fast rule, and the exact one where
+/// a value lies near a half.
 fn diverging(values: &[f32], out: &mut [u8], lo: f64, hi: f64) {
     #[cfg(target_arch = "x86_64")]
-    if crate::engine::simd::avx2() {
+    let near = if crate::engine::simd::avx2() {
         // SAFETY: the CPU has AVX2 (checked at run time just above).
-        return unsafe { diverging_avx2(values, out, lo, hi) };
+        unsafe { diverging_avx2(values, out, lo, hi) }
+    } else {
+        diverging_fast_body(values, out, lo, hi)
+    };
+    #[cfg(not(target_arch = "x86_64"))]
+    let near = diverging_fast_body(values, out, lo, hi);
+    if near {
+        diverging_body(values, out, lo, hi);
     }
-    diverging_body(values, out, lo, hi)
 }
 
-/// Renders an `h × w` map with a mapping, rows in parallel: grey levels, or
+/// Samples per piece of work when drawing: a piece with a value near a half
+/// is redone with the exact rule, so small pieces keep that rare cost small.
+const PIECE: usize = 1 << 12;
+
+/// The 8-bit levels of `values` under `m` (grey levels, or diverging table
+/// indices), into `out` of the same length; for a view whose mapping has 255
+/// levels.
+pub fn levels_u8(values: &[f32], out: &mut [u8], m: &ViewMapping) {
+    let (lo, hi) = (m.lo, m.hi);
+    for (v, o) in values.chunks(PIECE).zip(out.chunks_mut(PIECE)) {
+        match m.scale {
+            Scale::Grey => grey8(
+                v,
+                o,
+                lo,
+                if hi > lo { hi - lo } else { 1.0 },
+                m.levels as f64,
+            ),
+            Scale::Diverging => diverging(v, o, lo, hi),
+        }
+    }
+}
+
+/// The 16-bit grey levels of `values` under a grey mapping of 65535 levels.
+pub fn levels_u16(values: &[f32], out: &mut [u16], m: &ViewMapping) {
+    let (lo, hi) = (m.lo, m.hi);
+    let span = if hi > lo { hi - lo } else { 1.0 };
+    grey_body(values, out, lo, span, m.levels as f64, |x| x as u16);
+}
+
+/// A view from levels already computed for `m` (by [`levels_u8`] or
+/// [`levels_u16`]), `w` wide.
+pub fn view_of(m: &ViewMapping, w: usize, h: usize, u8s: Vec<u8>, u16s: Vec<u16>) -> ViewImage {
+    let (wu, hu) = (w as u32, h as u32);
+    match (m.scale, m.levels > 255) {
+        (Scale::Grey, true) => {
+            ViewImage::Grey16(ImageBuffer::from_raw(wu, hu, u16s).expect("sized"))
+        }
+        (Scale::Grey, false) => {
+            ViewImage::Grey8(ImageBuffer::from_raw(wu, hu, u8s).expect("sized"))
+        }
+        (Scale::Diverging, _) => {
+            ViewImage::Indexed(ImageBuffer::from_raw(wu, hu, u8s).expect("sized"))
+        }
+    }
+}
+
+/// Renders an `h × w` map with a mapping, pieces in parallel: grey levels, or
 /// indices into the diverging table.
 ///
 /// # Panics
@@ -217,34 +341,18 @@ pub fn render(values: &[f32], h: usize, w: usize, m: &ViewMapping) -> ViewImage 
         h * w,
         values.len()
     );
-    let (lo, hi) = (m.lo, m.hi);
-    let chunk = 1 << 16;
-    let (wu, hu) = (w as u32, h as u32);
-    match m.scale {
-        Scale::Grey => {
-            let span = if hi > lo { hi - lo } else { 1.0 };
-            let d = m.levels as f64;
-            if m.levels > 255 {
-                let mut out = vec![0u16; h * w];
-                out.par_chunks_mut(chunk)
-                    .zip(values.par_chunks(chunk))
-                    .for_each(|(o, v)| grey_body(v, o, lo, span, d, |x| x as u16));
-                ViewImage::Grey16(ImageBuffer::from_raw(wu, hu, out).expect("sized"))
-            } else {
-                let mut out = vec![0u8; h * w];
-                out.par_chunks_mut(chunk)
-                    .zip(values.par_chunks(chunk))
-                    .for_each(|(o, v)| grey8(v, o, lo, span, d));
-                ViewImage::Grey8(ImageBuffer::from_raw(wu, hu, out).expect("sized"))
-            }
-        }
-        Scale::Diverging => {
-            let mut out = vec![0u8; h * w];
-            out.par_chunks_mut(chunk)
-                .zip(values.par_chunks(chunk))
-                .for_each(|(o, v)| diverging(v, o, lo, hi));
-            ViewImage::Indexed(ImageBuffer::from_raw(wu, hu, out).expect("sized"))
-        }
+    if m.scale == Scale::Grey && m.levels > 255 {
+        let mut out = vec![0u16; h * w];
+        out.par_chunks_mut(PIECE)
+            .zip(values.par_chunks(PIECE))
+            .for_each(|(o, v)| levels_u16(v, o, m));
+        view_of(m, w, h, Vec::new(), out)
+    } else {
+        let mut out = vec![0u8; h * w];
+        out.par_chunks_mut(PIECE)
+            .zip(values.par_chunks(PIECE))
+            .for_each(|(o, v)| levels_u8(v, o, m));
+        view_of(m, w, h, out, Vec::new())
     }
 }
 
@@ -306,6 +414,10 @@ mod tests {
             (false, None, false),
             (false, Some((-1.0, 2.0)), false),
             (false, Some((0.0, 2.5)), true),
+            (false, Some((0.0, 2.0)), false),
+            (false, Some((0.0, 3.0)), false),
+            (true, Some((-2.0, 2.0)), false),
+            (true, Some((-3.0, 3.0)), false),
             (true, None, false),
             (true, Some((-0.5, 3.0)), false),
             (true, Some((0.5, 3.0)), false),

@@ -195,17 +195,37 @@ fn write_outputs(
                 crate::image_io::write_f32_tiff(&p, plane(k), w, h)?;
                 o.tiff = Some(p);
             }
-            if cx.save.stats {
-                o.stats = Some(map_stats(plane(k), cx.threshold));
-            }
-            if draw {
-                let (signed, range, deep) = (!nonneg[k], cx.view.range, cx.view.depth16);
-                // The statistics found the extremes already, when they were asked for.
-                let m = match &o.stats {
-                    Some(s) => view::mapping_from_extremes(s.min, s.max, signed, range, deep),
-                    None => view::mapping(plane(k), signed, range, deep),
+            let (signed, range, deep) = (!nonneg[k], cx.view.range, cx.view.depth16);
+            let pic = if cx.save.stats && draw && crate::stats::takes_histograms(h * w) {
+                // One look at the map for the view's levels and the statistics'
+                // second pass, after the first pass found the extremes.
+                let first = crate::stats::FirstPass::of(plane(k), cx.threshold);
+                let (lo, hi) = first.extremes();
+                let m = view::mapping_from_extremes(lo, hi, signed, range, deep);
+                let (mut u8s, mut u16s) = (Vec::new(), Vec::new());
+                let stats = if m.levels > 255 {
+                    u16s = vec![0u16; h * w];
+                    first.finish_with(plane(k), &mut u16s, |v, o| view::levels_u16(v, o, &m))
+                } else {
+                    u8s = vec![0u8; h * w];
+                    first.finish_with(plane(k), &mut u8s, |v, o| view::levels_u8(v, o, &m))
                 };
-                let pic = view::render(plane(k), h, w, &m);
+                o.stats = Some(stats);
+                Some((view::view_of(&m, w, h, u8s, u16s), m))
+            } else {
+                if cx.save.stats {
+                    o.stats = Some(map_stats(plane(k), cx.threshold));
+                }
+                draw.then(|| {
+                    // The statistics found the extremes already, when they were asked for.
+                    let m = match &o.stats {
+                        Some(s) => view::mapping_from_extremes(s.min, s.max, signed, range, deep),
+                        None => view::mapping(plane(k), signed, range, deep),
+                    };
+                    (view::render(plane(k), h, w, &m), m)
+                })
+            };
+            if let Some((pic, m)) = pic {
                 if cx.save.sheets {
                     o.cell = Some((
                         format!("{} [{}, {}]", names[k], sig3(m.lo), sig3(m.hi)),
