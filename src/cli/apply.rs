@@ -6,8 +6,8 @@ use tapmap::error::Error;
 use tapmap::jobs::shard::{resolve, ShardSpec};
 use tapmap::jobs::{run_apply, ApplyJob, Save, Stop, ViewOptions};
 
-use super::args::{parse_depth, parse_range, thread_count, RunArgs, StageArgs};
-use super::{command_line, status, watch_stop_signals, Terminal};
+use super::args::{parse_depth, parse_finite, parse_range, thread_count, RunArgs, StageArgs};
+use super::{command_line, status, watch_stop_signals, Terminal, EXIT_SOME_FAILED};
 
 pub const AFTER_HELP: &str = "Examples:\n  \
     tapmap apply --recipe kernels/line-a-edges.recipe.toml --out runs/night sample_data\n  \
@@ -39,7 +39,7 @@ pub struct ApplyArgs {
     #[arg(long, default_value = "fast", value_name = "fast|small")]
     view_png: tapmap::render::ViewPng,
     /// Threshold T for the above_fraction column of stats.csv (fraction of samples > T).
-    #[arg(long, value_name = "T", allow_hyphen_values = true)]
+    #[arg(long, value_name = "T", allow_hyphen_values = true, value_parser = parse_finite)]
     threshold: Option<f32>,
     /// Images processed at once, and threads [default: all cores].
     #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
@@ -80,15 +80,17 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
         resume: a.resume,
         stop: stop.clone(),
     };
+    if a.view_depth == 16 && !(a.save.views || a.save.sheets) {
+        tell!("tapmap: warning: --view-depth 16 changes nothing without views or sheets in --save");
+    }
     watch_stop_signals(&stop)?;
     let summary = run_apply(&job, &Terminal::new(a.io.quiet, "images"))?;
     let signal = summary.stopped_by;
-    if !a.io.quiet || summary.failed > 0 || signal.is_some() {
-        let rate = if summary.seconds > 0.0 {
-            (summary.processed + summary.failed - summary.resumed) as f64 / summary.seconds
-        } else {
-            0.0
-        };
+    for w in &summary.warnings {
+        tell!("tapmap: warning: {w}");
+    }
+    if !a.io.quiet || summary.failed > 0 || signal.is_some() || summary.tables_error.is_some() {
+        let worked = summary.processed + summary.failed - summary.resumed;
         let mut extra = String::new();
         if a.resume {
             extra += &format!(", {} taken from the earlier run", summary.resumed);
@@ -99,8 +101,17 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
                 summary.not_run
             );
         }
-        eprintln!(
-            "tapmap: {} processed, {} failed{extra}, {:.2} s ({rate:.1} images/s); {} files in {} (see images.csv{})",
+        // A rate only for work done here, not for results taken over.
+        let rate = if worked > 0 && summary.seconds > 0.0 {
+            format!(
+                " ({})",
+                super::rate_text(worked as f64 / summary.seconds, "images")
+            )
+        } else {
+            String::new()
+        };
+        tell!(
+            "tapmap: {} processed, {} failed{extra}, {:.2} s{rate}; {} files in {} (see images.csv{})",
             summary.processed,
             summary.failed,
             summary.seconds,
@@ -108,6 +119,13 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
             summary.dir.display(),
             if a.save.manifest { ", manifest.json" } else { "" }
         );
+    }
+    if let Some(e) = &summary.tables_error {
+        tell!(
+            "tapmap: error: every image's files are in place, but the tables could not be \
+             written: {e}; make room and run the same command again with --resume to write them"
+        );
+        return Ok(EXIT_SOME_FAILED);
     }
     if let Some(sig) = signal {
         return Ok(128 + sig);

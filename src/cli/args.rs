@@ -67,7 +67,7 @@ pub struct StageArgs {
     pub color: Option<ColorMode>,
     /// White level of integer samples, e.g. 4095 for 12-bit data in 16-bit files
     /// (used where the file's type can hold it) [default: full scale].
-    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..=65535))]
     pub white: Option<u32>,
     /// Do not apply the EXIF orientation; read pixels as stored.
     #[arg(long)]
@@ -117,6 +117,26 @@ pub fn parse_floats(s: &str) -> Result<Floats, String> {
         })
         .collect::<Result<Vec<_>, _>>()
         .map(Floats)
+}
+
+/// One finite number that float32 holds (`nan`, `inf` and 1e39 are refused).
+pub fn parse_finite(s: &str) -> Result<f32, String> {
+    s.trim()
+        .parse::<f32>()
+        .ok()
+        .filter(|v| v.is_finite())
+        .ok_or_else(|| format!("'{s}' is not a finite number (float32: up to ±3.4e38)"))
+}
+
+/// A finite number ≥ 0.
+pub fn parse_tolerance(s: &str) -> Result<f32, String> {
+    parse_finite(s).and_then(|v| {
+        if v >= 0.0 {
+            Ok(v)
+        } else {
+            Err(format!("'{s}' is below 0"))
+        }
+    })
 }
 
 pub fn parse_pair(s: &str) -> Result<(usize, usize), String> {
@@ -273,9 +293,19 @@ impl StageArgs {
 }
 
 /// Threads to use (`--jobs`, default all cores).
+/// `--jobs`, or one per core; a number above [`tapmap::jobs::max_jobs`] is
+/// lowered to it with a warning.
 pub fn thread_count(jobs: Option<u32>) -> usize {
-    jobs.map_or_else(
-        || std::thread::available_parallelism().map_or(1, |n| n.get()),
-        |j| j as usize,
-    )
+    let most = tapmap::jobs::max_jobs();
+    match jobs {
+        None => std::thread::available_parallelism().map_or(1, |n| n.get()),
+        Some(j) if j as usize > most => {
+            tell!(
+                "tapmap: warning: --jobs {j} is more than {} per core; running {most}",
+                tapmap::jobs::MAX_JOBS_PER_CORE
+            );
+            most
+        }
+        Some(j) => j as usize,
+    }
 }

@@ -56,13 +56,16 @@ pub enum BankCommand {
         /// Bank file to write.
         #[arg(long, short = 'o', value_name = "FILE")]
         out: PathBuf,
+        /// Replace FILE if it exists.
+        #[arg(long)]
+        force: bool,
     },
     /// Draw a bank's taps as a sheet (PNG), one enlarged cell per kernel.
     #[command(
         after_help = "Examples:\n  tapmap bank draw edges -o edges.png\n  tapmap bank draw sample_data/learned/first-layer.safetensors -o learned.png"
     )]
     Draw {
-        /// A bank file, weight file, shipped bank, or families joined with '+'.
+        /// A bank file, weight file, shipped bank, or shipped banks and families joined with '+'.
         #[arg(value_name = "NAME|FILE")]
         bank: String,
         /// PNG to write.
@@ -87,7 +90,21 @@ pub enum BankCommand {
         /// Op the taps are meant for.
         #[arg(long, default_value = "correlate")]
         op: Op,
+        /// Replace FILE if it exists.
+        #[arg(long)]
+        force: bool,
     },
+}
+
+/// A bank file is someone's work: it is replaced only when asked.
+fn refuse_overwrite(out: &std::path::Path, force: bool) -> Result<(), Error> {
+    if !force && std::fs::symlink_metadata(out).is_ok() {
+        return Err(Error::usage(format!(
+            "{} exists; give --force to replace it, or another -o",
+            out.display()
+        )));
+    }
+    Ok(())
 }
 
 pub fn run(cmd: BankCommand) -> Result<i32, Error> {
@@ -101,6 +118,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             std,
             op,
             out,
+            force,
         } => {
             let opts = tapmap::kernel::import::ImportOptions {
                 tensor,
@@ -111,11 +129,22 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
                 op: Some(op),
             };
             let bank = tapmap::kernel::import::import_bank(&file, &opts)?;
+            let k = &bank.kernels[0];
+            if layout == Layout::Hwio && k.rows != k.cols {
+                tell!(
+                    "tapmap: warning: {}: read as hwio (kh×kw×in×out) the kernels are {}×{}, not \
+                     square; if the file is out×in×kh×kw (PyTorch's order), use --layout oihw",
+                    file.display(),
+                    k.rows,
+                    k.cols
+                );
+            }
+            refuse_overwrite(&out, force)?;
             let text = bank_to_toml(&bank)?;
             tapmap::image_io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
             let k = &bank.kernels[0];
-            println!(
-                "wrote {} ({} kernels of {}×{}×{}, op {}{})",
+            say!(
+                "wrote {} ({} kernels of {}×{}×{}, op {}{})\n",
                 out.display(),
                 bank.kernels.len(),
                 k.channels(),
@@ -131,6 +160,16 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             Ok(EXIT_OK)
         }
         BankCommand::Draw { bank, out } => {
+            let is_png = out
+                .extension()
+                .and_then(|e| e.to_str())
+                .is_some_and(|e| e.eq_ignore_ascii_case("png"));
+            if !is_png {
+                return Err(Error::usage(format!(
+                    "bank draw writes PNG; give -o a name ending in .png (not {})",
+                    out.display()
+                )));
+            }
             let b = resolve_bank(&bank)?;
             let img = tapmap::render::taps::draw_bank(&b);
             tapmap::render::write_png(
@@ -140,15 +179,15 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
                 img.height(),
                 image::ExtendedColorType::Rgb8,
             )?;
-            println!("wrote {} ({} kernels)", out.display(), b.kernels.len());
+            say!("wrote {} ({} kernels)\n", out.display(), b.kernels.len());
             Ok(EXIT_OK)
         }
         BankCommand::List => {
-            print!("{}", tapmap::kernel::describe::family_list());
+            say!("{}", tapmap::kernel::describe::family_list());
             Ok(EXIT_OK)
         }
         BankCommand::Show { bank } => {
-            print!(
+            say!(
                 "{}",
                 tapmap::kernel::describe::bank_details(&resolve_bank(&bank)?)
             );
@@ -159,15 +198,17 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             out,
             name,
             op,
+            force,
         } => {
             let name = name.unwrap_or_else(|| {
                 out.file_stem()
                     .map_or_else(|| "bank".into(), |s| s.to_string_lossy().into_owned())
             });
             let bank = bank_from_specs(&specs, &name, op)?;
+            refuse_overwrite(&out, force)?;
             let text = bank_to_toml(&bank)?;
             tapmap::image_io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
-            println!("wrote {} ({} kernels)", out.display(), bank.kernels.len());
+            say!("wrote {} ({} kernels)\n", out.display(), bank.kernels.len());
             Ok(EXIT_OK)
         }
     }

@@ -7,7 +7,7 @@ use tapmap::error::Error;
 use tapmap::jobs::borders::{run_borders, BordersJob};
 use tapmap::jobs::Stop;
 
-use super::args::{thread_count, RunArgs, StageArgs};
+use super::args::{parse_tolerance, thread_count, RunArgs, StageArgs};
 use super::{status, watch_stop_signals, Terminal};
 
 pub const AFTER_HELP: &str = "Examples:\n  \
@@ -26,7 +26,7 @@ pub struct BordersArgs {
     #[arg(long, default_value = "zero,replicate,reflect,symmetric,wrap", value_parser = parse_modes, value_name = "LIST")]
     modes: ModeList,
     /// Two results agree when they differ by at most T (response units).
-    #[arg(long, default_value_t = 1e-6, value_name = "T")]
+    #[arg(long, default_value_t = 1e-6, value_name = "T", value_parser = parse_tolerance)]
     tolerance: f32,
     /// Also compare each mode with the real surroundings: cut a window N pixels in
     /// from every side, run it with each mode, compare with the full image's result.
@@ -74,7 +74,7 @@ pub fn run(b: BordersArgs) -> Result<i32, Error> {
     watch_stop_signals(&stop)?;
     let s = run_borders(&job, &Terminal::new(b.io.quiet, "images"))?;
     if !b.io.quiet || s.failed > 0 {
-        eprintln!(
+        tell!(
             "tapmap: {} image(s) studied, {} failed; results in {}",
             s.studied,
             s.failed,

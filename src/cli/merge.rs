@@ -30,7 +30,7 @@ pub struct MergeArgs {
 pub fn run(m: MergeArgs) -> Result<i32, Error> {
     let r = merge(&m.out, command_line())?;
     if !m.quiet || r.failed > 0 {
-        eprintln!(
+        tell!(
             "tapmap: merged {} shards: {} processed, {} failed; tables in {}",
             r.shards,
             r.processed,

@@ -3,6 +3,24 @@
 //! (0 all good, 1 some inputs failed, 2 usage or set-up error, 128 + signal
 //! when a signal stopped the run). Each command's flags and its call into the
 //! library are in a file of their own.
+//!
+//! Nothing here prints with `print!` or `eprintln!`, which panic when the
+//! stream is closed or full: [`say!`] writes to stdout and [`tell!`] to
+//! stderr. A closed pipe (`| head -1`) ends the printing quietly; any other
+//! failure to write stdout (a full disk) is reported on stderr at the end and
+//! makes the exit status at least 1. Files are written before anything is
+//! printed about them, so printing never loses results.
+
+/// Prints to stdout without ever panicking (see the module header).
+macro_rules! say {
+    ($($t:tt)*) => { $crate::cli::to_stdout(format_args!($($t)*)) };
+}
+
+/// Prints one line to stderr without ever panicking; a failure is ignored
+/// (there is nowhere left to say it).
+macro_rules! tell {
+    ($($t:tt)*) => { $crate::cli::to_stderr(format_args!($($t)*)) };
+}
 
 mod apply;
 mod args;
@@ -12,8 +30,9 @@ mod merge;
 mod plan;
 mod probe;
 
-use std::sync::atomic::AtomicBool;
-use std::sync::Arc;
+use std::io::Write;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
 
 use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
@@ -33,7 +52,7 @@ pub const EXIT_USAGE: i32 = 2;
     name = "tapmap",
     version,
     about = "Apply banks of convolution kernels to images; write feature maps.",
-    after_help = "Exit status: 0 all good, 1 some inputs failed (the rest were written), 2 usage or set-up error."
+    after_help = "Exit status: 0 all good, 1 some inputs failed (the rest were written) or the results could not all be written or printed, 2 usage or set-up error, 128+N stopped by signal N."
 )]
 struct Cli {
     #[command(subcommand)]
@@ -63,8 +82,50 @@ enum Command {
     Bank(bank::BankCommand),
 }
 
+/// The first failure to write stdout other than a closed pipe.
+static STDOUT_FAILURE: Mutex<Option<String>> = Mutex::new(None);
+/// Whether stdout was found closed: nothing more is written to it.
+static STDOUT_CLOSED: AtomicBool = AtomicBool::new(false);
+
+pub(crate) fn to_stdout(args: std::fmt::Arguments) {
+    if STDOUT_CLOSED.load(Ordering::Relaxed) {
+        return;
+    }
+    let mut out = std::io::stdout().lock();
+    if let Err(e) = out.write_fmt(args).and_then(|()| out.flush()) {
+        if e.kind() == std::io::ErrorKind::BrokenPipe {
+            STDOUT_CLOSED.store(true, Ordering::Relaxed);
+        } else {
+            STDOUT_FAILURE
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .get_or_insert(e.to_string());
+        }
+    }
+}
+
+pub(crate) fn to_stderr(args: std::fmt::Arguments) {
+    let mut err = std::io::stderr().lock();
+    let _ = writeln!(err, "{args}");
+}
+
 /// Runs the command line; returns the exit status.
 pub fn main() -> i32 {
+    let code = run_command();
+    match STDOUT_FAILURE
+        .lock()
+        .unwrap_or_else(|p| p.into_inner())
+        .take()
+    {
+        Some(e) => {
+            tell!("tapmap: error: could not write to standard output ({e}); files written are complete");
+            code.max(EXIT_SOME_FAILED)
+        }
+        None => code,
+    }
+}
+
+fn run_command() -> i32 {
     let cli = match Cli::try_parse() {
         Ok(c) => c,
         Err(e) => {
@@ -83,10 +144,24 @@ pub fn main() -> i32 {
     match outcome {
         Ok(code) => code,
         Err(e) => {
-            eprintln!("tapmap: error: {e}");
+            tell!("tapmap: error: {e}");
             EXIT_USAGE
         }
     }
+}
+
+/// A rate with three significant digits: `25.5 images/s`, `0.412 images/s`.
+fn rate_text(per_second: f64, what: &str) -> String {
+    let digits = if per_second >= 100.0 {
+        0
+    } else if per_second >= 10.0 {
+        1
+    } else if per_second >= 1.0 {
+        2
+    } else {
+        3
+    };
+    format!("{per_second:.digits$} {what}/s")
 }
 
 /// Exit status after a run over inputs: 1 when any failed.
@@ -132,11 +207,11 @@ impl Observer for Terminal {
         self.bar.inc(1);
     }
     fn input_failed(&self, error: &Error) {
-        self.bar.suspend(|| eprintln!("tapmap: {error}"));
+        self.bar.suspend(|| tell!("tapmap: {error}"));
     }
     fn report(&self, text: &str) {
         if !self.quiet {
-            self.bar.suspend(|| print!("{text}"));
+            self.bar.suspend(|| say!("{text}"));
         }
     }
     fn end(&self) {
@@ -165,7 +240,12 @@ fn watch_stop_signals(stop: &Stop) -> Result<(), Error> {
 
 /// The command line as given, for manifests.
 fn command_line() -> Vec<String> {
+    // Arguments that are not UTF-8 are kept without loss, their odd bytes
+    // written \xNN (as in the tables).
     std::env::args_os()
-        .map(|a| a.to_string_lossy().into_owned())
+        .map(|a| match a.to_str() {
+            Some(t) => t.to_string(),
+            None => tapmap::jobs::inputs::path_text(std::path::Path::new(&a)),
+        })
         .collect()
 }

@@ -28,7 +28,7 @@ pub fn run(p: PlanArgs) -> Result<i32, Error> {
     let (w, h) = p.size;
     let channels = spec.input.color.bank_channels();
     let plan = Plan::new(&spec.recipe, (channels, h, w), p.stage.engine)?;
-    print!(
+    say!(
         "{}",
         tapmap::pipeline::sizes_table((channels, h, w), plan.sizes())
     );

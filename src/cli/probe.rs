@@ -44,7 +44,7 @@ pub fn run(p: ProbeArgs) -> Result<i32, Error> {
     watch_stop_signals(&stop)?;
     let s = run_probe(&job, &Terminal::new(p.io.quiet, "images"))?;
     if !p.io.quiet || s.failed > 0 {
-        eprintln!(
+        tell!(
             "tapmap: probed {} image(s), {} failed; {} kernel(s), top {}; results in {}",
             s.probed,
             s.failed,

@@ -117,11 +117,6 @@ fn decode_any(bytes: &[u8], path: &Path, opts: &ReadOptions) -> Result<LoadedIma
     };
     let (w, h) = decoder.dimensions();
     opts.limits.check_pixels(w as u64, h as u64)?;
-    // The file's bytes, the decoded samples and the f32 planes made from them.
-    let need = (bytes.len() as u64)
-        .saturating_add(decoder.total_bytes())
-        .saturating_add((w as u64 * h as u64).saturating_mul(16));
-    opts.limits.check_memory(need, "to decode")?;
     let mut info = ImageMeta::default();
     let exif_raw = decoder
         .exif_metadata()
@@ -145,6 +140,27 @@ fn decode_any(bytes: &[u8], path: &Path, opts: &ReadOptions) -> Result<LoadedIma
         }
     }
     let orientation = orientation_of(info.orientation, opts, path, "EXIF")?;
+    // At the busiest: the file's bytes, the decoded samples (twice while a
+    // turn by 90° or 270° copies them) and the f32 planes made from them, one
+    // per channel the colour mode gives.
+    let decoded = decoder.total_bytes();
+    let turns = matches!(
+        orientation,
+        Orientation::Rotate90
+            | Orientation::Rotate270
+            | Orientation::Rotate90FlipH
+            | Orientation::Rotate270FlipH
+    );
+    let colour = decoder.color_type().channel_count() >= 3;
+    let planes = match opts.color {
+        crate::image_io::loaded::ColorMode::Luma => 1,
+        _ if colour => 3,
+        _ => 1,
+    };
+    let need = (bytes.len() as u64)
+        .saturating_add(decoded.saturating_mul(if turns { 2 } else { 1 }))
+        .saturating_add((w as u64 * h as u64).saturating_mul(4 * planes));
+    opts.limits.check_memory(need, "to decode")?;
     let mut img = DynamicImage::from_decoder(decoder).map_err(|e| bad(decode_message(&e)))?;
     if img.width() == 0 || img.height() == 0 {
         return Err(bad("has zero width or height".into()));

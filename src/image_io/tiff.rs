@@ -70,7 +70,25 @@ pub(crate) fn decode_grey_float_tiff(
     {
         DecodingResult::F32(v) => (v, 32),
         DecodingResult::F64(v) => (v.into_iter().map(|x| x as f32).collect(), 64),
-        _ => return Err(bad("is a TIFF layout tapmap does not read".into())),
+        other => {
+            let layout = match other {
+                DecodingResult::U8(_) => "8-bit unsigned integer",
+                DecodingResult::U16(_) => "16-bit unsigned integer",
+                DecodingResult::U32(_) => "32-bit unsigned integer",
+                DecodingResult::U64(_) => "64-bit unsigned integer",
+                DecodingResult::F16(_) => "16-bit float",
+                DecodingResult::I8(_) => "8-bit signed integer",
+                DecodingResult::I16(_) => "16-bit signed integer",
+                DecodingResult::I32(_) => "32-bit signed integer",
+                DecodingResult::I64(_) => "64-bit signed integer",
+                DecodingResult::F32(_) | DecodingResult::F64(_) => "float",
+            };
+            return Err(bad(format!(
+                "is a TIFF of {layout} samples in a layout tapmap does not read; tapmap reads \
+                 8- and 16-bit unsigned integer TIFF (grey or RGB) and one-channel 32- and \
+                 64-bit float TIFF: convert it to one of these"
+            )));
+        }
     };
     if samples.len() != w as usize * h as usize {
         return Err(bad(format!(

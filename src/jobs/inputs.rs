@@ -51,15 +51,75 @@ impl InputItem {
         PathBuf::from(name)
     }
 
-    /// `rel` with `/` separators, for CSVs and the manifest.
+    /// `rel` with `/` separators, for CSVs and the manifest, without loss:
+    /// see [`path_text`].
     pub fn rel_string(&self) -> String {
-        let parts: Vec<String> = self
-            .rel
-            .components()
-            .map(|c| c.as_os_str().to_string_lossy().into_owned())
-            .collect();
-        parts.join("/")
+        path_text(&self.rel)
     }
+}
+
+/// A path as text for tables, readable and without loss: components joined
+/// with `/`; bytes that are not UTF-8 written `\xNN` and a backslash written
+/// `\\`, so two names that differ only in such bytes never read alike.
+pub fn path_text(p: &Path) -> String {
+    p.components()
+        .map(|c| component_text(c.as_os_str()))
+        .collect::<Vec<_>>()
+        .join("/")
+}
+
+#[cfg(unix)]
+fn component_text(s: &std::ffi::OsStr) -> String {
+    use std::fmt::Write;
+    use std::os::unix::ffi::OsStrExt;
+    let mut out = String::new();
+    for chunk in s.as_bytes().utf8_chunks() {
+        out.push_str(&chunk.valid().replace('\\', "\\\\"));
+        for b in chunk.invalid() {
+            let _ = write!(out, "\\x{b:02x}");
+        }
+    }
+    out
+}
+
+/// The path that [`path_text`] wrote as `text` (its inverse); `None` for text
+/// it cannot have written.
+#[cfg(unix)]
+pub fn path_from_text(text: &str) -> Option<PathBuf> {
+    use std::os::unix::ffi::OsStringExt;
+    let mut bytes = Vec::with_capacity(text.len());
+    let mut rest = text.as_bytes();
+    while let Some((&b, tail)) = rest.split_first() {
+        rest = tail;
+        if b != b'\\' {
+            bytes.push(b);
+            continue;
+        }
+        match rest {
+            [b'\\', tail @ ..] => {
+                bytes.push(b'\\');
+                rest = tail;
+            }
+            [b'x', h, l, tail @ ..] => {
+                let hex = std::str::from_utf8(&[*h, *l]).ok()?.to_string();
+                bytes.push(u8::from_str_radix(&hex, 16).ok()?);
+                rest = tail;
+            }
+            _ => return None,
+        }
+    }
+    Some(PathBuf::from(std::ffi::OsString::from_vec(bytes)))
+}
+
+/// The path that [`path_text`] wrote as `text` (its inverse).
+#[cfg(not(unix))]
+pub fn path_from_text(text: &str) -> Option<PathBuf> {
+    Some(PathBuf::from(text.replace("\\\\", "\\")))
+}
+
+#[cfg(not(unix))]
+fn component_text(s: &std::ffi::OsStr) -> String {
+    s.to_string_lossy().replace('\\', "\\\\")
 }
 
 fn has_image_extension(p: &Path) -> bool {
@@ -119,6 +179,61 @@ struct Excluder {
     canonical: Option<PathBuf>,
 }
 
+/// Whether `dir` holds a run of tapmap's: a `journal.jsonl` or a
+/// `manifest.json` that says it is tapmap's (its first bytes name the format).
+pub fn is_run_folder(dir: &Path) -> bool {
+    let names = |file: &str, format: &str| {
+        use std::io::Read;
+        let mut head = [0u8; 256];
+        std::fs::File::open(dir.join(file))
+            .and_then(|mut f| f.read(&mut head))
+            .is_ok_and(|n| String::from_utf8_lossy(&head[..n]).contains(format))
+    };
+    names("journal.jsonl", "tapmap-journal") || names("manifest.json", "tapmap-manifest")
+}
+
+/// Whether a folder between `root` (not included: it was checked before) and
+/// the file `p` holds a tapmap run; `seen` remembers each folder's answer.
+fn below_run_folder(
+    p: &Path,
+    root: &Path,
+    seen: &mut std::collections::HashMap<PathBuf, bool>,
+) -> bool {
+    let mut dir = p.parent();
+    while let Some(d) = dir {
+        if d == root || d.as_os_str().is_empty() {
+            return false;
+        }
+        let run = *seen
+            .entry(d.to_path_buf())
+            .or_insert_with(|| is_run_folder(d));
+        if run {
+            return true;
+        }
+        dir = d.parent();
+    }
+    false
+}
+
+/// The folder of a tapmap run that `path` lies in, if any (checked up to the
+/// file system's root).
+fn run_folder_above(path: &Path) -> Option<PathBuf> {
+    let abs = absolute(path);
+    let start = if abs.is_dir() {
+        Some(abs.as_path())
+    } else {
+        abs.parent()
+    };
+    let mut dir = start;
+    while let Some(d) = dir {
+        if is_run_folder(d) {
+            return Some(d.to_path_buf());
+        }
+        dir = d.parent();
+    }
+    None
+}
+
 impl Excluder {
     fn new(out_dir: &Path) -> Self {
         Excluder {
@@ -173,7 +288,9 @@ fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>
             }
         };
         if entry.file_type().is_dir() {
-            if ex.excludes(entry.path()) {
+            // The output folder, and any folder of an earlier tapmap run, is
+            // never input.
+            if ex.excludes(entry.path()) || is_run_folder(entry.path()) {
                 it.skip_current_dir();
             }
             continue;
@@ -217,24 +334,69 @@ pub fn path_order_key(rel: &str) -> Vec<&str> {
     rel.split('/').collect()
 }
 
-/// Expands the inputs (see the module header). Errors: a bad pattern, nothing to
-/// read, two inputs with one output name.
+/// Expands the inputs (see the module header). Errors, before anything is
+/// written: a bad pattern, a pattern or folder that matches nothing, inputs
+/// that do not exist, inputs inside the output folder or inside a folder of an
+/// earlier tapmap run, and inputs that would write the same output names (all
+/// of these listed at once).
 pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>, Error> {
     let ex = Excluder::new(out_dir);
+    let mut missing = Vec::new();
+    for arg in args {
+        let s = arg.to_string_lossy();
+        let is_glob = !arg.exists() && is_pattern(&s);
+        let named = if is_glob {
+            pattern_root(&s)
+        } else {
+            arg.clone()
+        };
+        if !is_glob && std::fs::symlink_metadata(arg).is_err() {
+            missing.push(arg.display().to_string());
+            continue;
+        }
+        if ex.excludes(&named) {
+            return Err(Error::usage(format!(
+                "input {} lies inside the output folder {}; tapmap never reads its own \
+                 outputs: give another --out, or move the inputs",
+                arg.display(),
+                out_dir.display()
+            )));
+        }
+        if let Some(run) = run_folder_above(&named) {
+            return Err(Error::usage(format!(
+                "input {} lies inside {}, the folder of a tapmap run (it holds its manifest or \
+                 journal); tapmap never reads a run's outputs as input",
+                arg.display(),
+                run.display()
+            )));
+        }
+    }
+    if !missing.is_empty() {
+        return Err(Error::usage(format!(
+            "no such file or folder: {}",
+            missing.join(", ")
+        )));
+    }
     let mut items = Vec::new();
     for arg in args {
         let s = arg.to_string_lossy();
         if !arg.exists() && is_pattern(&s) {
             let root = pattern_root(&s);
             let npy_pattern = s.to_ascii_lowercase().ends_with(".npy");
-            let paths = glob::glob(&s).map_err(|e| Error::Usage(format!("pattern '{s}': {e}")))?;
+            let paths = glob::glob(&s).map_err(|e| Error::usage(format!("pattern '{s}': {e}")))?;
+            let mut run_folders = std::collections::HashMap::new();
             let before = items.len();
             for p in paths {
                 match p {
-                    Ok(p) if p.is_dir() => walk_folder(&p, &root, &ex, &mut items),
+                    Ok(p) if p.is_dir() => {
+                        if !ex.excludes(&p) && !is_run_folder(&p) {
+                            walk_folder(&p, &root, &ex, &mut items)
+                        }
+                    }
                     Ok(p)
                         if (has_image_extension(&p) || (npy_pattern && is_npy(&p)))
-                            && !ex.excludes(&p) =>
+                            && !ex.excludes(&p)
+                            && !below_run_folder(&p, &root, &mut run_folders) =>
                     {
                         let rel = rel_below(&p, &root);
                         items.push(InputItem {
@@ -256,7 +418,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
                 }
             }
             if items.len() == before {
-                return Err(Error::Usage(format!(
+                return Err(Error::usage(format!(
                     "pattern '{s}' matches no image files"
                 )));
             }
@@ -264,7 +426,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
             let before = items.len();
             walk_folder(arg, arg, &ex, &mut items);
             if items.len() == before {
-                return Err(Error::Usage(format!(
+                return Err(Error::usage(format!(
                     "folder {} holds no image files ({})",
                     arg.display(),
                     IMAGE_EXTENSIONS.join(", ")
@@ -274,7 +436,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
             let name = arg
                 .file_name()
                 .map(PathBuf::from)
-                .ok_or_else(|| Error::Usage(format!("{}: not a file name", arg.display())))?;
+                .ok_or_else(|| Error::usage(format!("{}: not a file name", arg.display())))?;
             items.push(InputItem {
                 source: arg.clone(),
                 rel: name,
@@ -283,7 +445,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
         }
     }
     if items.is_empty() {
-        return Err(Error::Usage("no input images given".into()));
+        return Err(Error::usage("no input images given"));
     }
     items.sort_by(|a, b| {
         let (ra, rb) = (a.rel_string(), b.rel_string());
@@ -299,16 +461,39 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
             i.source.canonicalize().unwrap_or_else(|_| i.source.clone()),
         ))
     });
-    let mut names: BTreeMap<PathBuf, &InputItem> = BTreeMap::new();
+    let mut names: BTreeMap<PathBuf, Vec<&InputItem>> = BTreeMap::new();
     for item in &items {
-        if let Some(first) = names.insert(item.stem_path(), item) {
-            return Err(Error::Usage(format!(
-                "{} and {} would both write outputs named {}; rename one, or run them separately",
-                first.source.display(),
-                item.source.display(),
-                item.stem_path().display()
-            )));
-        }
+        names.entry(item.stem_path()).or_default().push(item);
+    }
+    let clashes: Vec<String> = names
+        .iter()
+        .filter(|(_, v)| v.len() > 1)
+        .map(|(stem, v)| {
+            let files: Vec<String> = v.iter().map(|i| i.source.display().to_string()).collect();
+            format!("{} (from {})", stem.display(), files.join(", "))
+        })
+        .collect();
+    if !clashes.is_empty() {
+        return Err(Error::usage(format!(
+            "{} output name(s) would be written by more than one input: {}; rename them, or \
+             run them separately",
+            clashes.len(),
+            clashes.join("; ")
+        )));
     }
     Ok(items)
+}
+
+/// A digest of the whole sorted input list (each input's relative path and
+/// where it was read from), which every shard of a job records, so that merge
+/// can refuse shards that saw different inputs.
+pub fn list_digest(items: &[InputItem]) -> String {
+    let mut text = String::new();
+    for i in items {
+        text.push_str(&i.rel_string());
+        text.push('\0');
+        text.push_str(&path_text(&absolute(&i.source)));
+        text.push('\n');
+    }
+    crate::digest::sha256_hex(text.as_bytes())
 }

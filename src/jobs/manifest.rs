@@ -53,6 +53,10 @@ pub struct Manifest {
     pub threads: Option<usize>,
     /// Inputs, processed and failed.
     pub summary: SummaryRecord,
+    /// The whole sorted input list the job was given (before any shard took
+    /// its part): how many, and a digest of it; shards of one job agree on it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub listed: Option<ListRecord>,
     /// In a shard's own manifest: `K/N`.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub shard: Option<String>,
@@ -208,6 +212,15 @@ pub struct SummaryRecord {
     pub failed: usize,
 }
 
+/// The whole sorted input list of a job.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ListRecord {
+    /// Inputs listed.
+    pub count: usize,
+    /// SHA-256 over each input's relative path and where it was read from.
+    pub sha256: String,
+}
+
 /// A stopped run.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Interrupted {
@@ -245,6 +258,41 @@ pub struct FileRecord {
     pub path: String,
     /// Size in bytes.
     pub bytes: u64,
+    /// Last modification, nanoseconds since 1970 (an input's outputs; what
+    /// `--resume` checks, beside the size, to tell a file changed in place).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub modified: Option<u64>,
+}
+
+impl FileRecord {
+    /// The record of the file at `path` as it is now, named `rel`.
+    pub fn of(path: &Path, rel: String) -> Result<FileRecord, Error> {
+        let m = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+        Ok(FileRecord {
+            path: rel,
+            bytes: m.len(),
+            modified: modified_ns(&m),
+        })
+    }
+
+    /// The file's path below its run folder.
+    pub fn path_buf(&self) -> std::path::PathBuf {
+        crate::jobs::inputs::path_from_text(&self.path)
+            .unwrap_or_else(|| std::path::PathBuf::from(&self.path))
+    }
+
+    /// Whether the file at `path` is still what this record says.
+    pub fn still(&self, path: &Path) -> bool {
+        std::fs::metadata(path)
+            .is_ok_and(|m| m.is_file() && m.len() == self.bytes && modified_ns(&m) == self.modified)
+    }
+}
+
+fn modified_ns(m: &std::fs::Metadata) -> Option<u64> {
+    m.modified()
+        .ok()
+        .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+        .map(|d| d.as_nanos() as u64)
 }
 
 /// One view and its value mapping.

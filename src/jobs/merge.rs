@@ -12,8 +12,8 @@ use crate::error::Error;
 use crate::jobs::apply::{read_journal, JOURNAL};
 use crate::jobs::inputs::path_order_key;
 use crate::jobs::manifest::{
-    read_manifest, write_manifest, FileRecord, Manifest, ShardRun, SummaryRecord, MANIFEST_FORMAT,
-    MANIFEST_VERSION,
+    read_manifest, write_manifest, FileRecord, ListRecord, Manifest, ShardRun, SummaryRecord,
+    MANIFEST_FORMAT, MANIFEST_VERSION,
 };
 use crate::jobs::shard::Shard;
 use crate::jobs::tables::{write_tables, Finished};
@@ -98,6 +98,7 @@ fn shard_manifest(dir: &Path, shard: Shard) -> Result<Manifest, Error> {
 /// into `out`. `command_line` goes into the merged manifest.
 pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Error> {
     let shards = shard_folders(out)?;
+    let _lock = crate::jobs::OutLock::take(out)?;
     let mut first: Option<Manifest> = None;
     let mut done: Vec<Finished> = Vec::new();
     let mut runs = Vec::new();
@@ -120,6 +121,24 @@ pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Erro
             } else {
                 None
             };
+            if f.listed != m.listed {
+                let say = |l: &Option<ListRecord>| match l {
+                    Some(l) => format!("{} inputs, list digest {}", l.count, &l.sha256[..12]),
+                    None => "no record of its input list".to_string(),
+                };
+                return Err(Error::record(
+                    dir.join("manifest.json"),
+                    format!(
+                        "shard {shard} saw another input list than shard 1/{} ({} against {}): \
+                         files were added, removed or renamed between the shards' runs, or the \
+                         shards were given other inputs; run every shard again over the same \
+                         inputs",
+                        shard.count,
+                        say(&m.listed),
+                        say(&f.listed)
+                    ),
+                ));
+            }
             if let Some(field) = differs {
                 return Err(Error::record(
                     dir.join("manifest.json"),
@@ -173,6 +192,16 @@ pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Erro
             w[0].path()
         )));
     }
+    if let Some(l) = &first.listed {
+        if l.count != done.len() {
+            return Err(Error::usage(format!(
+                "{}: the shards hold {} inputs but their job listed {}; a shard left some out",
+                out.display(),
+                done.len(),
+                l.count
+            )));
+        }
+    }
     let save: Save = first.job.save.parse().map_err(Error::Usage)?;
     let mut files = write_tables(out, &done, save.stats)?;
     let failed = done.iter().filter(|d| !d.ok()).count();
@@ -193,6 +222,7 @@ pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Erro
             processed: done.len() - failed,
             failed,
         },
+        listed: first.listed.clone(),
         shard: None,
         resumed: None,
         interrupted: None,
@@ -204,6 +234,7 @@ pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Erro
     files.push(FileRecord {
         path: "manifest.json".into(),
         bytes,
+        modified: None,
     });
     Ok(MergeSummary {
         shards: shards.len(),

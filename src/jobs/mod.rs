@@ -29,6 +29,7 @@ pub mod shard;
 pub mod tables;
 
 use std::fmt;
+use std::path::{Path, PathBuf};
 use std::str::FromStr;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Arc;
@@ -196,11 +197,26 @@ pub const STOP_ASKED: usize = 1 << 16;
 /// its computations inside it, so an embedding program's own global pool is
 /// left alone.
 pub fn thread_pool(threads: usize) -> Result<rayon::ThreadPool, Error> {
+    let most = max_jobs();
+    if threads > most {
+        return Err(Error::usage(format!(
+            "{threads} threads asked for; at most {most} ({MAX_JOBS_PER_CORE} per core) are \
+             started: more only wait on each other and take memory"
+        )));
+    }
     rayon::ThreadPoolBuilder::new()
         .num_threads(threads.max(1))
         .thread_name(|i| format!("tapmap-{i}"))
         .build()
         .map_err(|e| Error::usage(format!("cannot start {threads} threads: {e}")))
+}
+
+/// Threads (and images in flight) allowed per core.
+pub const MAX_JOBS_PER_CORE: usize = 8;
+
+/// The most threads a job starts: [`MAX_JOBS_PER_CORE`] per core.
+pub fn max_jobs() -> usize {
+    MAX_JOBS_PER_CORE * std::thread::available_parallelism().map_or(1, |n| n.get())
 }
 
 /// Calls `f(index, item)` for every item on `workers` threads that take items
@@ -253,5 +269,106 @@ pub fn safe_name(name: &str) -> String {
         "map".into()
     } else {
         s
+    }
+}
+
+/// Makes a job's output folder, with plain words for an `--out` that is a
+/// symbolic link to nothing or a file.
+pub fn make_out_dir(dir: &Path) -> Result<(), Error> {
+    if let (Ok(m), Err(_)) = (std::fs::symlink_metadata(dir), std::fs::metadata(dir)) {
+        if m.file_type().is_symlink() {
+            let to = std::fs::read_link(dir).map(|t| t.display().to_string());
+            return Err(Error::usage(format!(
+                "--out {} is a symbolic link to {}, which does not exist; make its target or \
+                 give another folder",
+                dir.display(),
+                to.unwrap_or_else(|_| "somewhere".into())
+            )));
+        }
+    }
+    if dir.exists() && !dir.is_dir() {
+        return Err(Error::usage(format!(
+            "--out {} is a file, not a folder",
+            dir.display()
+        )));
+    }
+    std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, e))
+}
+
+/// The lock one job holds on its output folder while it writes there: an
+/// advisory lock (`flock`) on `.tapmap.lock`, which holds the owner's process
+/// id. The kernel lets go of it when the process ends, however it ends, so a
+/// lock left by a dead process is never mistaken for a live one. The file is
+/// removed when the job lets go.
+pub struct OutLock {
+    file: std::fs::File,
+    path: PathBuf,
+}
+
+/// The lock file's name in an output folder.
+pub const LOCK_FILE: &str = ".tapmap.lock";
+
+impl OutLock {
+    /// Takes the lock on `dir`, or says which process holds it.
+    pub fn take(dir: &Path) -> Result<OutLock, Error> {
+        use std::io::{Read, Seek, Write};
+        let path = dir.join(LOCK_FILE);
+        // A holder removes the file as it lets go; a lock taken on a file that
+        // was removed meanwhile is worth nothing, so it is taken again.
+        for _ in 0..16 {
+            let mut file = std::fs::OpenOptions::new()
+                .read(true)
+                .write(true)
+                .create(true)
+                .truncate(false)
+                .open(&path)
+                .map_err(|e| Error::io(&path, e))?;
+            #[cfg(unix)]
+            {
+                use std::os::fd::AsRawFd;
+                use std::os::unix::fs::MetadataExt;
+                // SAFETY: flock only reads the descriptor, which `file` keeps open.
+                let got =
+                    unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) } == 0;
+                if !got {
+                    let mut owner = String::new();
+                    let _ = file.read_to_string(&mut owner);
+                    let owner = owner.trim();
+                    return Err(Error::usage(format!(
+                        "another tapmap{} is writing into {}; wait for it to finish, or give \
+                         another --out",
+                        if owner.is_empty() {
+                            String::new()
+                        } else {
+                            format!(" (process {owner})")
+                        },
+                        dir.display()
+                    )));
+                }
+                let same = match (file.metadata(), std::fs::metadata(&path)) {
+                    (Ok(a), Ok(b)) => a.ino() == b.ino() && a.dev() == b.dev(),
+                    _ => false,
+                };
+                if !same {
+                    continue;
+                }
+            }
+            file.set_len(0).map_err(|e| Error::io(&path, e))?;
+            file.rewind().map_err(|e| Error::io(&path, e))?;
+            write!(file, "{}", std::process::id()).map_err(|e| Error::io(&path, e))?;
+            return Ok(OutLock { file, path });
+        }
+        Err(Error::usage(format!(
+            "could not take the lock {}: other runs keep taking and leaving it",
+            path.display()
+        )))
+    }
+}
+
+impl Drop for OutLock {
+    fn drop(&mut self) {
+        // Removed while still held, so no other process can have taken it.
+        let _ = std::fs::remove_file(&self.path);
+        let _ = &self.file;
     }
 }

@@ -47,9 +47,33 @@ pub fn csv_bytes(header: &[&str], rows: impl IntoIterator<Item = Vec<String>>) -
     // Writing records into memory cannot fail.
     w.write_record(header).expect("in memory");
     for r in rows {
-        w.write_record(&r).expect("in memory");
+        let fields: Vec<std::borrow::Cow<'_, str>> = r.iter().map(|f| visible(f)).collect();
+        w.write_record(fields.iter().map(|f| f.as_bytes()))
+            .expect("in memory");
     }
     w.into_inner().expect("in memory")
+}
+
+/// A field with its control characters (NUL, tab, line breaks, escape, …)
+/// written `\xNN`, so that every row is one line a person can read and no
+/// terminal is driven by a kernel's name.
+fn visible(field: &str) -> std::borrow::Cow<'_, str> {
+    if !field.chars().any(char::is_control) {
+        return std::borrow::Cow::Borrowed(field);
+    }
+    let mut out = String::with_capacity(field.len() + 8);
+    for c in field.chars() {
+        if c.is_control() {
+            if (c as u32) < 0x100 {
+                out.push_str(&format!("\\x{:02x}", c as u32));
+            } else {
+                out.push_str(&format!("\\u{{{:04x}}}", c as u32));
+            }
+        } else {
+            out.push(c);
+        }
+    }
+    std::borrow::Cow::Owned(out)
 }
 
 /// Writes a CSV file atomically (see [`csv_bytes`]).
@@ -126,13 +150,14 @@ impl StatsRow {
 }
 
 /// Column names of `images.csv`.
-pub const IMAGES_COLUMNS: [&str; 15] = [
+pub const IMAGES_COLUMNS: [&str; 16] = [
     "path",
     "sha256",
     "width",
     "height",
     "bit_depth",
     "sample",
+    "converted",
     "color",
     "white",
     "orientation",
@@ -170,6 +195,15 @@ impl ImageRow {
             known(&|m| m.height.to_string()),
             known(&|m| m.bit_depth.to_string()),
             known(&|m| (if m.float { "float" } else { "int" }).to_string()),
+            // Every map is computed in float32 (see crate::image_io::npy).
+            known(&|m| {
+                (if m.float && m.bit_depth > 32 {
+                    "float64 to float32"
+                } else {
+                    ""
+                })
+                .to_string()
+            }),
             known(&|m| m.color.clone()),
             known(&|m| optional(&m.white)),
             known(&|m| optional(&m.orientation)),
@@ -234,6 +268,7 @@ pub fn write_tables(
         files.push(crate::jobs::manifest::FileRecord {
             path: "stats.csv".into(),
             bytes,
+            modified: None,
         });
     }
     let rows = done.iter().map(|d| d.image.fields());
@@ -241,6 +276,7 @@ pub fn write_tables(
     files.push(crate::jobs::manifest::FileRecord {
         path: "images.csv".into(),
         bytes,
+        modified: None,
     });
     Ok(files)
 }

@@ -48,7 +48,34 @@ pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
     }
     let specs: Vec<&str> = arg.split('+').collect();
     let mut kernels = Vec::with_capacity(specs.len());
+    // The op of the joined bank: shipped banks bring their own, families are
+    // `correlate`; every part must agree, since one op runs the whole bank,
+    // except parts whose kernels all equal their own 180° turn (a Gaussian, a
+    // box), which give the same maps under either op.
+    let mut op: Option<(Op, String)> = None;
+    let mut agree = |o: Op, part: &str| -> Result<(), Error> {
+        match op {
+            Some((first, ref at)) if first != o => Err(Error::bank(format!(
+                "'{arg}' joins parts that declare different ops: '{at}' is {first}, '{part}' \
+                 is {o}; one bank runs with one op, so join parts of one op (or write a bank \
+                 file that states it)"
+            ))),
+            Some(_) => Ok(()),
+            None => {
+                op = Some((o, part.to_string()));
+                Ok(())
+            }
+        }
+    };
     for s in specs {
+        if let Some(b) = shipped_bank(s) {
+            let b = b?;
+            if !b.kernels.iter().all(turn_symmetric) {
+                agree(b.op, s)?;
+            }
+            kernels.extend(b.kernels);
+            continue;
+        }
         let spec = FamilySpec::parse(s)?;
         if crate::kernel::families::find(&spec.family).is_none() {
             let names = FAMILIES
@@ -62,17 +89,37 @@ pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
                 near_names_hint(&spec.family, names)
             )));
         }
-        kernels.push(spec.build(Some(s))?);
+        let k = spec.build(Some(s))?;
+        if !turn_symmetric(&k) {
+            agree(Op::Correlate, s)?;
+        }
+        kernels.push(k);
+    }
+    let op = op.map_or(Op::Correlate, |(o, _)| o);
+    let mut seen = std::collections::HashSet::new();
+    if let Some(k) = kernels.iter().find(|k| !seen.insert(k.name.clone())) {
+        return Err(Error::bank(format!(
+            "'{arg}' gives two kernels named '{}'; join each part once",
+            k.name
+        )));
     }
     let bank = Bank {
         normalize: None,
         name: arg.to_string(),
-        op: Op::Correlate,
+        op,
         description: None,
         kernels,
     };
     bank.validate()?;
     Ok(bank)
+}
+
+/// Whether a kernel equals its own 180° turn, so that convolution and
+/// correlation with it give the same map.
+fn turn_symmetric(k: &crate::kernel::Kernel) -> bool {
+    k.planes
+        .iter()
+        .all(|p| p.iter().zip(p.iter().rev()).all(|(a, b)| a == b))
 }
 
 /// A bank from family specs as `bank make` takes them: `FAMILY[:KEY=VALUE,...]`,
@@ -83,7 +130,14 @@ pub fn bank_from_specs(specs: &[String], name: &str, op: Op) -> Result<Bank, Err
         match (s.contains('='), s.contains(':'), parsed.last_mut()) {
             (true, false, Some(last)) => {
                 let extra = FamilySpec::parse(&format!("x:{s}"))?;
-                last.params.extend(extra.params);
+                for (k, v) in extra.params {
+                    if last.params.insert(k.clone(), v).is_some() {
+                        return Err(Error::bank(format!(
+                            "parameter {k} is given twice for family {}; give it once",
+                            last.family
+                        )));
+                    }
+                }
             }
             (true, false, None) => {
                 return Err(Error::bank(format!(

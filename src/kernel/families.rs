@@ -43,7 +43,12 @@ impl FamilySpec {
             let v: f64 = v.trim().parse().map_err(|_| {
                 Error::bank(format!("parameter {k} in '{s}' is not a number: '{v}'"))
             })?;
-            params.insert(k.trim().to_string(), v);
+            if params.insert(k.trim().to_string(), v).is_some() {
+                return Err(Error::bank(format!(
+                    "parameter {} is given twice in '{s}'; give it once",
+                    k.trim()
+                )));
+            }
         }
         Ok(FamilySpec {
             family: family.trim().to_string(),

@@ -139,6 +139,27 @@ pub fn parse_npy_header(bytes: &[u8]) -> Result<NpyHeader, String> {
         }
         ReadHeaderError::Parse(p) => format!("has a header that does not parse: {p}"),
     })?;
+    // The header is a Python dict literal, padded with spaces to its newline;
+    // the parser takes one without its closing brace, which a damaged or
+    // hand-made file can lack.
+    let start = if bytes.get(6) == Some(&1) { 10 } else { 12 };
+    let end = cursor.position() as usize;
+    let text = bytes.get(start..end).unwrap_or_default();
+    let text = String::from_utf8_lossy(text);
+    let text = text.trim_end_matches(['\n', ' ', '\0']);
+    if !(text.starts_with('{') && text.ends_with('}')) {
+        return Err(format!(
+            "has a header that is not a whole Python dict ({} … {}); the file is damaged",
+            text.chars().take(12).collect::<String>(),
+            text.chars()
+                .rev()
+                .take(12)
+                .collect::<String>()
+                .chars()
+                .rev()
+                .collect::<String>()
+        ));
+    }
     // The descriptor is a Python literal: a quoted string for the plain dtypes
     // read here, a list for structured ones.
     let literal = header.type_descriptor.to_string();

@@ -155,7 +155,16 @@ impl RecipeSpec {
     /// the colour mode gives, and each later conv stage's kernels take the
     /// channels the stage before gives.
     pub fn validate(&self) -> Result<(), Error> {
+        if let Some(w) = self.input.white {
+            if !(1..=65535).contains(&w) {
+                return Err(Error::recipe(format!(
+                    "white level {w} fits no integer sample type read (8 or 16 bits): give 1 to \
+                     65535"
+                )));
+            }
+        }
         let mut channels: Option<usize> = None;
+        let mut per_channel = false;
         for (i, stage) in self.recipe.stages.iter().enumerate() {
             let Stage::Conv(conv) = stage else { continue };
             let at = |e: Error| e.within(&format!("stage {} (conv)", i + 1));
@@ -177,15 +186,26 @@ impl RecipeSpec {
                         )));
                     }
                 }
-                Some(c) if c != planes && self.input.color != ColorMode::Split => {
+                Some(c) if c != planes && !per_channel => {
                     return Err(at(Error::recipe(format!(
                         "bank '{}' has kernels with {planes} plane(s), but the stage before gives \
                          {c} map(s); a conv stage's kernels need one plane per map they read",
                         conv.bank.name
                     ))));
                 }
+                Some(c) if planes % c != 0 => {
+                    // Split mode: the first stage gives c maps per input channel.
+                    return Err(at(Error::recipe(format!(
+                        "bank '{}' has kernels with {planes} plane(s), but in colour mode split \
+                         the stage before gives {c} map(s) per input channel, so a multiple of \
+                         {c} planes is needed",
+                        conv.bank.name
+                    ))));
+                }
                 Some(_) => {}
             }
+            // Only the first stage's maps come once per input channel.
+            per_channel = channels.is_none() && self.input.color == ColorMode::Split;
             channels = Some(conv.bank.kernels.len());
         }
         Ok(())

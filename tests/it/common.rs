@@ -193,3 +193,45 @@ pub fn worst(a: &[f32], b: &[f64]) -> (f64, usize) {
             |m, v| if v.0 > m.0 || v.0.is_nan() { v } else { m },
         )
 }
+
+/// A run record (manifest or journal) without what differs between two runs
+/// that wrote the same bytes: each output's modification time, the journal
+/// lines' checks made over it, and the manifest's clock fields. Journals are
+/// compared line by line.
+pub fn without_times(name: &std::path::Path, bytes: &[u8]) -> Vec<u8> {
+    fn strip(v: &mut serde_json::Value) {
+        match v {
+            serde_json::Value::Object(o) => {
+                o.remove("modified");
+                o.remove("check");
+                o.values_mut().for_each(strip);
+            }
+            serde_json::Value::Array(a) => a.iter_mut().for_each(strip),
+            _ => {}
+        }
+    }
+    let file = name.file_name().and_then(|f| f.to_str()).unwrap_or("");
+    match file {
+        "journal.jsonl" => {
+            let mut out = Vec::new();
+            for line in String::from_utf8_lossy(bytes).lines() {
+                let mut v: serde_json::Value = serde_json::from_str(line).unwrap();
+                strip(&mut v);
+                out.extend(serde_json::to_vec(&v).unwrap());
+                out.push(b'\n');
+            }
+            out
+        }
+        "manifest.json" => {
+            let mut m: serde_json::Value = serde_json::from_slice(bytes).unwrap();
+            strip(&mut m);
+            if let Some(o) = m.as_object_mut() {
+                for k in ["started", "finished", "seconds", "command_line", "resumed"] {
+                    o.remove(k);
+                }
+            }
+            serde_json::to_vec(&m).unwrap()
+        }
+        _ => bytes.to_vec(),
+    }
+}

@@ -18,6 +18,7 @@ mod published;
 mod regression;
 mod render;
 mod resume;
+mod safety;
 mod sample_data;
 mod schema;
 mod shards;

@@ -54,15 +54,7 @@ fn tree(dir: &Path) -> BTreeMap<PathBuf, Vec<u8>> {
             continue;
         }
         let rel = e.path().strip_prefix(dir).unwrap().to_path_buf();
-        let mut bytes = std::fs::read(e.path()).unwrap();
-        if rel == Path::new("manifest.json") {
-            let mut m: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
-            let o = m.as_object_mut().unwrap();
-            for k in ["started", "finished", "seconds", "command_line", "resumed"] {
-                o.remove(k);
-            }
-            bytes = serde_json::to_vec(&m).unwrap();
-        }
+        let bytes = crate::common::without_times(&rel, &std::fs::read(e.path()).unwrap());
         files.insert(rel, bytes);
     }
     files

@@ -3,10 +3,12 @@
 //! can be taken up where it stopped (`--resume`) and shards can be merged.
 //!
 //! The first line names the layout, `{"format": "tapmap-journal",
-//! "journal_version": 1}`; each further line is `{"job": DIGEST, "done": …}`,
-//! where DIGEST says what decides the outputs (see
-//! [`crate::jobs::apply::ApplyJob::digest`]) and `done` is the input's
-//! [`Finished`] result. A line cut short by a crash is skipped when read; a
+//! "journal_version": 1}`; each further line is `{"job": DIGEST, "check":
+//! SHA, "done": …}`, where DIGEST says what decides the outputs (see
+//! [`crate::jobs::apply::ApplyJob::digest`]), `done` is the input's
+//! [`Finished`] result and SHA the SHA-256 of `done` as serialised (compact
+//! JSON, fields in their declared order). A line cut short by a crash, or
+//! whose `done` no longer has its check (edited), is skipped when read; a
 //! journal of another layout is refused. Schema:
 //! `shared/schemas/journal.schema.json`.
 
@@ -38,7 +40,19 @@ struct HeadOut {
 #[derive(Serialize, Deserialize)]
 struct Line {
     job: String,
+    /// SHA-256 of `done` as written: an entry edited by hand no longer
+    /// matches it and is never taken over.
+    #[serde(default)]
+    check: String,
     done: Finished,
+}
+
+fn check_of(done: &Finished) -> String {
+    crate::digest::sha256_hex(
+        serde_json::to_string(done)
+            .expect("typed records serialise")
+            .as_bytes(),
+    )
 }
 
 fn head_line() -> String {
@@ -53,6 +67,7 @@ fn head_line() -> String {
 fn entry_line(job: &str, done: &Finished) -> String {
     serde_json::to_string(&Line {
         job: job.to_string(),
+        check: check_of(done),
         done: done.clone(),
     })
     .expect("typed records serialise")
@@ -83,7 +98,7 @@ pub fn read_journal(path: &Path, job: Option<&str>) -> Result<Vec<Finished>, Err
     let mut by_path: BTreeMap<String, Finished> = BTreeMap::new();
     for line in lines {
         if let Ok(l) = serde_json::from_str::<Line>(line) {
-            if job.map_or(true, |j| j == l.job) {
+            if job.map_or(true, |j| j == l.job) && l.check == check_of(&l.done) {
                 by_path.insert(l.done.path().to_string(), l.done);
             }
         }

@@ -21,6 +21,7 @@
 //! command line on SIGINT or SIGTERM), workers finish the images in flight,
 //! take no new ones, and the tables and manifest are written for what is done.
 
+mod earlier;
 pub mod journal;
 mod outputs;
 
@@ -33,14 +34,16 @@ use std::time::{Instant, SystemTime};
 use crate::digest::sha256_hex;
 use crate::engine::Engine;
 use crate::error::Error;
-use crate::jobs::inputs::{expand_inputs, InputItem};
+use crate::jobs::inputs::{expand_inputs, list_digest, InputItem};
 use crate::jobs::manifest::{
-    recipe_record, views_record, write_manifest, Interrupted, JobRecord, Manifest, SummaryRecord,
-    MANIFEST_FORMAT, MANIFEST_VERSION,
+    recipe_record, views_record, write_manifest, FileRecord, Interrupted, JobRecord, ListRecord,
+    Manifest, SummaryRecord, MANIFEST_FORMAT, MANIFEST_VERSION,
 };
 use crate::jobs::shard::Shard;
 use crate::jobs::tables::{write_tables, Finished};
-use crate::jobs::{for_each_parallel, thread_pool, Observer, Save, Stop, ViewOptions};
+use crate::jobs::{
+    for_each_parallel, make_out_dir, thread_pool, Observer, OutLock, Save, Stop, ViewOptions,
+};
 use crate::render::colormap;
 use crate::stage::RecipeSpec;
 
@@ -94,6 +97,12 @@ pub struct Summary {
     pub not_run: usize,
     /// The signal that stopped the run, if one did.
     pub stopped_by: Option<i32>,
+    /// Why the tables or manifest could not be written at the end, if they
+    /// could not (every image's files and journal entry are in place; a run
+    /// with `--resume` writes them).
+    pub tables_error: Option<String>,
+    /// Things the run did otherwise than its options may suggest, each once.
+    pub warnings: Vec<String>,
     /// The folder the run wrote into.
     pub dir: PathBuf,
 }
@@ -115,6 +124,16 @@ impl ApplyJob {
             resume: false,
             stop: Stop::new(),
         }
+    }
+
+    /// Checks what can be checked before any input is listed: the recipe,
+    /// and option values (a threshold must be a finite number).
+    pub fn check(&self) -> Result<(), Error> {
+        self.spec.validate()?;
+        if self.threshold.is_some_and(|t| !t.is_finite()) {
+            return Err(Error::usage("the threshold must be a finite number"));
+        }
+        Ok(())
     }
 
     /// The folder this run writes into: `out_dir`, or its shard subfolder.
@@ -153,37 +172,33 @@ impl ApplyJob {
 /// Runs the job. Set-up problems are `Err` before any image is read; a bad
 /// image is recorded, reported to `obs` and skipped.
 pub fn run_apply(job: &ApplyJob, obs: &dyn Observer) -> Result<Summary, Error> {
-    job.spec.validate()?;
+    job.check()?;
     let mut items = expand_inputs(&job.inputs, &job.out_dir)?;
+    let listed = list_record(&items);
     if let Some(s) = job.shard {
         items.retain(|i| s.holds(&i.rel_string()));
     }
-    run_items(job, items, obs)
+    run_listed(job, items, listed, obs)
 }
 
-/// Removes temporary files (`.tapmap-*.part`) a killed run left in `dir`, without
-/// entering other runs' shard folders.
-fn remove_leftovers(dir: &Path) {
-    let walker = walkdir::WalkDir::new(dir).into_iter().filter_entry(|e| {
-        e.depth() == 0
-            || !(e.file_type().is_dir()
-                && Shard::from_folder(&e.file_name().to_string_lossy()).is_some())
-    });
-    for e in walker.flatten() {
-        let name = e.file_name().to_string_lossy();
-        if e.file_type().is_file() && name.starts_with(".tapmap-") && name.ends_with(".part") {
-            let _ = std::fs::remove_file(e.path());
-        }
+fn list_record(items: &[InputItem]) -> ListRecord {
+    ListRecord {
+        count: items.len(),
+        sha256: list_digest(items),
     }
 }
 
-/// Whether an earlier result can stand for `item` (see the module header).
+/// Whether an earlier result can stand for `item` (see the module header):
+/// it succeeded, every file it lists is there with its recorded size and
+/// modification time, and the input's bytes have the recorded digest.
 fn still_valid(prev: &Finished, item: &InputItem, dir: &Path, spec: &RecipeSpec) -> bool {
     prev.ok()
         && item.problem.is_none()
-        && prev.entry.outputs.iter().all(|o| {
-            std::fs::metadata(dir.join(&o.path)).is_ok_and(|m| m.is_file() && m.len() == o.bytes)
-        })
+        && prev
+            .entry
+            .outputs
+            .iter()
+            .all(|o| o.still(&dir.join(o.path_buf())))
         && prev.image.sha256.is_some()
         && crate::image_io::read_input(&item.source, &spec.input.limits)
             .ok()
@@ -192,24 +207,39 @@ fn still_valid(prev: &Finished, item: &InputItem, dir: &Path, spec: &RecipeSpec)
 }
 
 /// Runs the job over inputs already listed (and sharded): what [`run_apply`] does
-/// after listing.
+/// after listing. The manifest's `listed` record is made from `items`.
 pub fn run_items(
     job: &ApplyJob,
     items: Vec<InputItem>,
     obs: &dyn Observer,
 ) -> Result<Summary, Error> {
+    let listed = list_record(&items);
+    run_listed(job, items, listed, obs)
+}
+
+fn run_listed(
+    job: &ApplyJob,
+    items: Vec<InputItem>,
+    listed: ListRecord,
+    obs: &dyn Observer,
+) -> Result<Summary, Error> {
     let started = SystemTime::now();
     let clock = Instant::now();
-    job.spec.validate()?;
+    job.check()?;
     let pool = thread_pool(job.jobs)?;
     let dir = job.run_dir();
-    std::fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, e))?;
+    make_out_dir(&dir)?;
     tempfile::Builder::new()
         .prefix(".tapmap-probe")
         .tempfile_in(&dir)
         .map(drop)
         .map_err(|e| Error::io(&dir, e))?;
-    remove_leftovers(&dir);
+    let _lock = OutLock::take(&dir)?;
+    earlier::remove_leftovers(&dir);
+    let recorded = earlier::recorded_files(&dir);
+    if !job.resume {
+        earlier::remove_recorded(&dir, &recorded);
+    }
     let key = job.digest();
     let journal_path = dir.join(JOURNAL);
     let earlier: HashMap<String, Finished> = if job.resume {
@@ -224,6 +254,7 @@ pub fn run_items(
 
     let table = colormap::table();
     let plans = PlanCache::default();
+    let warnings = Mutex::new(std::collections::BTreeSet::new());
     let cx = ImageContext {
         spec: &job.spec,
         engine: job.engine,
@@ -233,6 +264,7 @@ pub fn run_items(
         dir: &dir,
         table: &table,
         plans: &plans,
+        warnings: &warnings,
     };
     obs.begin(items.len());
     let results: Mutex<Vec<Option<Finished>>> = Mutex::new(vec![None; items.len()]);
@@ -272,45 +304,64 @@ pub fn run_items(
     let not_run = all.iter().filter(|r| r.is_none()).count();
     let done: Vec<Finished> = all.into_iter().flatten().collect();
     let failed = done.iter().filter(|d| !d.ok()).count();
-    // The journal now holds exactly this run's results, in table order.
-    journal.rewrite(&done)?;
-
     let resumed = resumed.into_inner();
     let signal = job.stop.requested();
-    let mut files = write_tables(&dir, &done, job.save.stats)?;
     let summary = SummaryRecord {
         inputs: done.len(),
         processed: done.len() - failed,
         failed,
     };
-    if job.save.manifest {
-        let manifest = Manifest {
-            format: MANIFEST_FORMAT.into(),
-            manifest_version: MANIFEST_VERSION,
-            tool: "tapmap".into(),
-            version: env!("CARGO_PKG_VERSION").into(),
-            job: job.record(),
-            command_line: job.command_line.clone(),
-            started: Some(humantime::format_rfc3339_seconds(started).to_string()),
-            finished: Some(humantime::format_rfc3339_seconds(SystemTime::now()).to_string()),
-            seconds: Some(clock.elapsed().as_secs_f64()),
-            threads: Some(job.jobs),
-            summary,
-            shard: job.shard.map(|s| s.to_string()),
-            resumed: job.resume.then_some(resumed),
-            interrupted: (not_run > 0 || signal.is_some()).then_some(Interrupted {
-                signal: signal.unwrap_or(0),
-                not_run,
-            }),
-            shards: None,
-            files: files.clone(),
-            inputs: done.iter().map(|d| d.entry.clone()).collect(),
-        };
-        let bytes = write_manifest(&dir.join("manifest.json"), &manifest)?;
-        files.push(crate::jobs::manifest::FileRecord {
-            path: "manifest.json".into(),
-            bytes,
-        });
+    // Every image's files and journal entry are in place: a failure from here
+    // on (a full disk) loses no result, and `--resume` writes the tables.
+    let finish = || -> Result<Vec<FileRecord>, Error> {
+        // The journal now holds exactly this run's results, in table order.
+        journal.rewrite(&done)?;
+        let mut files = write_tables(&dir, &done, job.save.stats)?;
+        if job.save.manifest {
+            let manifest = Manifest {
+                format: MANIFEST_FORMAT.into(),
+                manifest_version: MANIFEST_VERSION,
+                tool: "tapmap".into(),
+                version: env!("CARGO_PKG_VERSION").into(),
+                job: job.record(),
+                command_line: job.command_line.clone(),
+                started: Some(humantime::format_rfc3339_seconds(started).to_string()),
+                finished: Some(humantime::format_rfc3339_seconds(SystemTime::now()).to_string()),
+                seconds: Some(clock.elapsed().as_secs_f64()),
+                threads: Some(job.jobs),
+                summary,
+                listed: Some(listed),
+                shard: job.shard.map(|s| s.to_string()),
+                resumed: job.resume.then_some(resumed),
+                interrupted: (not_run > 0 || signal.is_some()).then_some(Interrupted {
+                    signal: signal.unwrap_or(0),
+                    not_run,
+                }),
+                shards: None,
+                files: files.clone(),
+                inputs: done.iter().map(|d| d.entry.clone()).collect(),
+            };
+            let bytes = write_manifest(&dir.join("manifest.json"), &manifest)?;
+            files.push(FileRecord {
+                path: "manifest.json".into(),
+                bytes,
+                modified: None,
+            });
+        }
+        Ok(files)
+    };
+    let (files, tables_error) = match finish() {
+        Ok(f) => (f, None),
+        Err(e) => (Vec::new(), Some(e.to_string())),
+    };
+    if job.resume && tables_error.is_none() {
+        // What the earlier records list and this run's results do not.
+        let now: std::collections::BTreeSet<&String> = files
+            .iter()
+            .chain(done.iter().flat_map(|d| d.entry.outputs.iter()))
+            .map(|f| &f.path)
+            .collect();
+        earlier::remove_recorded(&dir, recorded.iter().filter(|f| !now.contains(f)));
     }
     Ok(Summary {
         processed: summary.processed,
@@ -320,6 +371,12 @@ pub fn run_items(
         resumed,
         not_run,
         stopped_by: signal,
+        tables_error,
+        warnings: warnings
+            .into_inner()
+            .unwrap_or_else(|p| p.into_inner())
+            .into_iter()
+            .collect(),
         dir,
     })
 }

@@ -32,6 +32,8 @@ pub(crate) struct ImageContext<'a> {
     pub dir: &'a Path,
     pub table: &'a [[u8; 3]],
     pub plans: &'a PlanCache,
+    /// Warnings for the whole run, each said once.
+    pub warnings: &'a std::sync::Mutex<std::collections::BTreeSet<String>>,
 }
 
 /// Processes one input; never fails as a whole: a failure is recorded in the
@@ -84,6 +86,18 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
             });
         }
         let maps = plan.run(img.data.view())?;
+        if let Some(k) = first_overflowed(&maps) {
+            let name = plan.channel_names()[k].clone();
+            plan.give_back(maps);
+            return Err(Error::decode(
+                &item.source,
+                format!(
+                    "map {k} ({name}) holds values that are not finite: the sums overflowed \
+                     float32 (largest finite ±3.4e38); scale the bank's taps or the input \
+                     down; nothing was written for this image"
+                ),
+            ));
+        }
         let out = write_outputs(
             cx,
             item,
@@ -152,6 +166,24 @@ fn held_bytes(cx: &ImageContext, plan: &Plan, planes: usize) -> u64 {
         .saturating_add(plan.peak_bytes().max(writing))
 }
 
+/// The first map holding a sample that is not finite (an overflow: inputs and
+/// taps are finite), if any. Tests exponent bits so the loop vectorises.
+fn first_overflowed(maps: &Array3<f32>) -> Option<usize> {
+    use rayon::prelude::*;
+    let (c, h, w) = maps.dim();
+    let data = maps.as_slice().expect("plans return standard layout");
+    let bad = |x: &[f32]| {
+        x.chunks(4096).any(|c| {
+            c.iter().fold(0u32, |a, v| {
+                a | u32::from(v.to_bits() & 0x7f80_0000 == 0x7f80_0000)
+            }) != 0
+        })
+    };
+    (0..c)
+        .into_par_iter()
+        .find_first(|&k| bad(&data[k * h * w..(k + 1) * h * w]))
+}
+
 /// What one map of an image gave: the files written for it (each only once
 /// whole), its statistics, its view's mapping and its sheet cell.
 #[derive(Default)]
@@ -184,6 +216,22 @@ fn write_outputs(
     let plane = |k: usize| &data[k * h * w..(k + 1) * h * w];
     let file_of = |k: usize, ext: &str| format!("{k:02}-{}.{ext}", safe_name(&names[k]));
     let draw = cx.save.views || cx.save.sheets;
+    if draw && cx.view.depth16 {
+        let signed: Vec<&str> = (0..c)
+            .filter(|&k| !nonneg[k])
+            .map(|k| names[k].as_str())
+            .collect();
+        if !signed.is_empty() {
+            cx.warnings
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .insert(format!(
+                    "--view-depth 16 gives 16-bit grey views of maps that cannot be negative; \
+                     the signed maps ({}) are drawn on the 8-bit diverging colour scale",
+                    signed.join(", ")
+                ));
+        }
+    }
 
     // One map's work: its TIFF, its statistics, its view (PNG encode) and sheet
     // cell. Maps run in parallel; the `.npy` of all maps is written meanwhile.
@@ -271,13 +319,10 @@ fn write_outputs(
         return Err(e);
     }
     let record = |path: &Path, entry: &mut InputRecord| -> Result<(), Error> {
-        let bytes = std::fs::metadata(path)
-            .map_err(|e| Error::io(path, e))?
-            .len();
-        entry.outputs.push(FileRecord {
-            path: slash(path.strip_prefix(out).unwrap_or(path)),
-            bytes,
-        });
+        entry.outputs.push(FileRecord::of(
+            path,
+            slash(path.strip_prefix(out).unwrap_or(path)),
+        )?);
         Ok(())
     };
     if npy_ok {
@@ -330,12 +375,10 @@ fn write_outputs(
     Ok(())
 }
 
-/// A path with `/` separators, for the manifest.
+/// A path with `/` separators, for the manifest, without loss
+/// ([`crate::jobs::inputs::path_text`]).
 pub(crate) fn slash(p: &Path) -> String {
-    p.components()
-        .map(|c| c.as_os_str().to_string_lossy().into_owned())
-        .collect::<Vec<_>>()
-        .join("/")
+    crate::jobs::inputs::path_text(p)
 }
 
 /// A value with about three significant digits, for sheet labels.

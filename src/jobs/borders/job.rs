@@ -58,12 +58,13 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
     if job.modes.len() < 2 {
         return Err(Error::usage("give at least two pad modes to compare"));
     }
-    if job.tolerance.is_nan() || job.tolerance < 0.0 {
+    if !job.tolerance.is_finite() || job.tolerance < 0.0 {
         return Err(Error::usage("--tolerance must be a number ≥ 0"));
     }
     let items = expand_inputs(&job.inputs, &job.out_dir)?;
     let pool = thread_pool(job.jobs)?;
-    std::fs::create_dir_all(&job.out_dir).map_err(|e| Error::io(&job.out_dir, e))?;
+    crate::jobs::make_out_dir(&job.out_dir)?;
+    let _lock = crate::jobs::OutLock::take(&job.out_dir)?;
     let out = &job.out_dir;
     obs.begin(items.len());
     // Images in flight at once, each its rows, curves and table; gathered by
@@ -180,6 +181,28 @@ fn one_image(job: &BordersJob, item: &InputItem) -> Result<ImageResult, Error> {
     let img = read_image(&item.source, &job.spec.input)?;
     let recipe = job.spec.recipe_for(&img.channel_names)?;
     let names = recipe.channel_names(img.data.dim().0);
+    let (_, h, w) = img.data.dim();
+    let need = ((img.data.len() as u64) * 4).saturating_add(
+        crate::jobs::borders::study_bytes(
+            &recipe,
+            img.data.dim(),
+            job.modes.len(),
+            job.crop.is_some(),
+            job.engine,
+        )
+        .map_err(|e| e.in_file(&item.source))?,
+    );
+    job.spec
+        .input
+        .limits
+        .check_memory(
+            need,
+            &format!(
+                "to study {} pad modes on its {w}×{h} pixels",
+                job.modes.len()
+            ),
+        )
+        .map_err(|e| e.in_file(&item.source))?;
     let st = study(
         &recipe,
         img.data.view(),

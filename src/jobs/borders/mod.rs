@@ -195,26 +195,20 @@ pub struct ImageStudy {
 /// tables show a few distances past the widest band).
 pub const MARGIN: usize = 4;
 
-/// Runs both studies on one input (`c × h × w`); every mode is computed only
-/// on the ring of outputs the predicted band and [`MARGIN`] cover ([`ring`]).
-pub fn study(
-    recipe: &Recipe,
-    input: ArrayView3<f32>,
-    names: &[String],
-    modes: &[PadMode],
-    tol: f32,
-    crop: Option<usize>,
-    engine: Engine,
-) -> Result<ImageStudy, Error> {
-    use rayon::prelude::*;
-    if modes.is_empty() {
-        return Err(Error::Shape("no pad modes to compare".into()));
-    }
-    let (_, h, w) = input.dim();
-    let recipes: Vec<Recipe> = modes.iter().map(|m| with_mode(recipe, *m)).collect();
-    // Sizes and fields do not depend on the pad mode: one plan says them.
-    let plan = Plan::new(recipe, input.dim(), engine)?;
-    let (oc, oh, ow) = plan.output_shape();
+/// What a study's rings look like for one input size (they do not depend on
+/// the pad mode: one plan says them).
+struct Layout {
+    plan: Plan,
+    reach: (Reach, Reach),
+    predicted: Vec<[usize; 4]>,
+    widest: [usize; 4],
+    d: usize,
+}
+
+fn layout(recipe: &Recipe, dim: (usize, usize, usize), engine: Engine) -> Result<Layout, Error> {
+    let (_, h, w) = dim;
+    let plan = Plan::new(recipe, dim, engine)?;
+    let (_, oh, ow) = plan.output_shape();
     let reach = (Reach::of(&plan, true), Reach::of(&plan, false));
     let predicted: Vec<[usize; 4]> = plan
         .fields()
@@ -234,6 +228,56 @@ pub fn study(
         ]
     });
     let d = widest.iter().copied().max().unwrap_or(0) + MARGIN;
+    Ok(Layout {
+        plan,
+        reach,
+        predicted,
+        widest,
+        d,
+    })
+}
+
+/// Bytes a study of an input of `dim` holds at its busiest, beside the input
+/// itself: every mode's ring run at once (the cut image, its busiest stage,
+/// the ring), the median ring and, with the crop study, as much again.
+pub fn study_bytes(
+    recipe: &Recipe,
+    dim: (usize, usize, usize),
+    modes: usize,
+    crop: bool,
+    engine: Engine,
+) -> Result<u64, Error> {
+    let l = layout(recipe, dim, engine)?;
+    let shape = l.plan.output_shape();
+    let per_mode = ring::ring_bytes(recipe, dim, l.reach, shape, l.d, engine)?;
+    let all = per_mode.saturating_mul(modes as u64 + 1);
+    Ok(if crop { all.saturating_mul(2) } else { all })
+}
+
+/// Runs both studies on one input (`c × h × w`); every mode is computed only
+/// on the ring of outputs the predicted band and [`MARGIN`] cover ([`ring`]).
+pub fn study(
+    recipe: &Recipe,
+    input: ArrayView3<f32>,
+    names: &[String],
+    modes: &[PadMode],
+    tol: f32,
+    crop: Option<usize>,
+    engine: Engine,
+) -> Result<ImageStudy, Error> {
+    use rayon::prelude::*;
+    if modes.is_empty() {
+        return Err(Error::Shape("no pad modes to compare".into()));
+    }
+    let recipes: Vec<Recipe> = modes.iter().map(|m| with_mode(recipe, *m)).collect();
+    let Layout {
+        plan,
+        reach,
+        predicted,
+        widest,
+        d,
+    } = layout(recipe, input.dim(), engine)?;
+    let (oc, oh, ow) = plan.output_shape();
     let maps: Vec<Ring> = recipes
         .par_iter()
         .map(|r| ring_outputs(r, input, reach, (oc, oh, ow), (0, 0), (oh, ow), d, engine))

@@ -147,6 +147,49 @@ impl Reach {
     }
 }
 
+/// Rows (or columns) removed from the middle of `n` to give the first and
+/// last `k` outputs: a multiple of J, leaving at least the span they read at
+/// each end.
+fn removed_from_middle(n: usize, reach: Reach, k: usize) -> usize {
+    let j = reach.jump.max(1);
+    n.saturating_sub(2 * reach.span(k)) / j * j
+}
+
+/// Bytes [`ring_outputs`] holds at its busiest for an input of `dim` and an
+/// output map of `shape` (the whole map's case): the cut image, its plan's
+/// busiest stage and the ring kept, for the larger of the two axes' cuts.
+pub(crate) fn ring_bytes(
+    recipe: &Recipe,
+    dim: (usize, usize, usize),
+    reach: (Reach, Reach),
+    (c, h, w): (usize, usize, usize),
+    d: usize,
+    engine: Engine,
+) -> Result<u64, Error> {
+    let (ic, ih, iw) = dim;
+    let f32s = |n: usize| (n as u64).saturating_mul(4);
+    if Ring::covers(d, h, w) {
+        let plan = Plan::new(recipe, dim, engine)?;
+        return Ok(plan.peak_bytes().saturating_add(f32s(c * h * w)));
+    }
+    let cut_rows = ih - removed_from_middle(ih, reach.0, d);
+    let cut_cols = iw - removed_from_middle(iw, reach.1, d);
+    let mut most = 0u64;
+    for cut in [(ic, cut_rows, iw), (ic, ih, cut_cols)] {
+        let plan = Plan::new(recipe, cut, engine)?;
+        most = most.max(
+            f32s(cut.0 * cut.1 * cut.2)
+                .saturating_add(plan.peak_bytes())
+                .saturating_add({
+                    let (a, b, c) = plan.output_shape();
+                    f32s(a * b * c)
+                }),
+        );
+    }
+    let ring = f32s(c * (2 * d * w + 2 * d * h));
+    Ok(most.saturating_add(ring))
+}
+
 /// The first `k0` and the last `k1` outputs along `axis` (1 rows, 2 columns)
 /// of `recipe` over `input`, every output along the other axis: from the input
 /// cut along `axis` (module header), or whole when the cut would keep it all.
@@ -163,11 +206,8 @@ fn edge_outputs(
     } else {
         input.dim().2
     };
-    let j = reach.jump.max(1);
+    let removed = removed_from_middle(n, reach, k0.max(k1));
     let keep = reach.span(k0.max(k1));
-    // Rows removed from the middle: a multiple of J, leaving at least `keep`
-    // at each end.
-    let removed = n.saturating_sub(2 * keep) / j * j;
     let cut = if removed == 0 {
         input.to_owned()
     } else {

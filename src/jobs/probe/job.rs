@@ -57,7 +57,8 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
     let k = job.top;
     let items = expand_inputs(&job.inputs, &job.out_dir)?;
     let pool = thread_pool(job.jobs)?;
-    std::fs::create_dir_all(&job.out_dir).map_err(|e| Error::io(&job.out_dir, e))?;
+    crate::jobs::make_out_dir(&job.out_dir)?;
+    let _lock = crate::jobs::OutLock::take(&job.out_dir)?;
     // Per channel: (name, best hits). Channel names come from the first image.
     let best: Mutex<Vec<(String, Vec<Hit>)>> = Mutex::new(Vec::new());
     let plans = PlanCache::default();
@@ -71,6 +72,11 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
             let img = read_image(&item.source, &job.spec.input)?;
             let plan = plans.get(&job.spec, &img.channel_names, img.data.dim(), job.engine)?;
             let names = plan.channel_names();
+            let (_, h, w) = img.data.dim();
+            job.spec.input.limits.check_memory(
+                held_bytes(&plan, img.data.len(), k, items.len()),
+                &format!("to probe its {w}×{h} pixels for the top {k}"),
+            )?;
             let maps = plan.run(img.data.view())?;
             let (oc, oh, ow) = maps.dim();
             let data = maps.as_slice().expect("plans return standard layout");
@@ -129,6 +135,53 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
     })
 }
 
+/// Bytes one image holds at its busiest while probed: its planes, the plan's
+/// busiest stage, the best samples each channel's bands keep (channels in
+/// parallel), and the hits kept over the run (at most `k` per channel, and
+/// no more than the separated places `images` images of this size can give),
+/// each with its patch.
+fn held_bytes(plan: &crate::pipeline::Plan, planes: usize, k: usize, images: usize) -> u64 {
+    let (oc, oh, ow) = plan.output_shape();
+    let per_map = (oh as u64).saturating_mul(ow as u64);
+    let (mut most_hits, mut patch, mut window) = (0u64, 0u64, 1u64);
+    for f in plan.fields() {
+        let (sy, sx) = crate::jobs::probe::separation(*f);
+        let places = (oh.div_ceil(sy) as u64).saturating_mul(ow.div_ceil(sx) as u64);
+        most_hits = most_hits.max(places);
+        patch = patch.max((f.0.size as u64).saturating_mul(f.1.size as u64) * 3);
+        window = window.max(((2 * sy - 1) as u64).saturating_mul((2 * sx - 1) as u64));
+    }
+    let kept = (k as u64).min(most_hits.saturating_mul(images as u64));
+    let hits = (oc as u64).saturating_mul(kept).saturating_mul(patch + 160);
+    let candidates = (k as u64)
+        .saturating_mul(window)
+        .min(per_map)
+        .saturating_mul(16)
+        .saturating_mul(oc.min(rayon::current_num_threads()) as u64);
+    (planes as u64)
+        .saturating_mul(4)
+        .saturating_add(plan.peak_bytes())
+        .saturating_add(candidates)
+        .saturating_add(hits)
+}
+
+/// Hits drawn on one kernel sheet; more go on further pages.
+pub const SHEET_HITS: usize = 64;
+/// Hits per kernel row in the overview (all are in the kernel sheets and
+/// probe.csv).
+pub const OVERVIEW_HITS: usize = 12;
+/// Kernel rows per overview page.
+pub const OVERVIEW_ROWS: usize = 32;
+
+/// A page's file name: `stem.png` for the first, `stem-pN.png` after.
+fn page_name(stem: &str, page: usize) -> String {
+    if page == 0 {
+        format!("{stem}.png")
+    } else {
+        format!("{stem}-p{}.png", page + 1)
+    }
+}
+
 /// `probe.csv`, the per-kernel sheets and the overview.
 fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> Result<(), Error> {
     let k = job.top;
@@ -174,12 +227,22 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
                 )
             })
             .collect();
-        if !cells.is_empty() {
-            let s = sheet(
-                &format!("{name}: top {} of {images} image(s)", cells.len()),
-                &cells,
-            );
-            let path = kernels_dir.join(format!("{ch:02}-{}.png", safe_name(name)));
+        let pages = cells.len().div_ceil(SHEET_HITS);
+        for (page, part) in cells.chunks(SHEET_HITS).enumerate() {
+            let first = page * SHEET_HITS + 1;
+            let title = if pages > 1 {
+                format!(
+                    "{name}: hits {first}-{} of the top {} of {images} image(s), page {} of {pages}",
+                    first + part.len() - 1,
+                    cells.len(),
+                    page + 1
+                )
+            } else {
+                format!("{name}: top {} of {images} image(s)", cells.len())
+            };
+            let s = sheet(&title, part);
+            let stem = format!("{ch:02}-{}", safe_name(name));
+            let path = kernels_dir.join(page_name(&stem, page));
             crate::render::write_png(
                 &path,
                 s.as_raw(),
@@ -196,8 +259,9 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             || image::RgbImage::new(1, 1),
             |kk| crate::render::taps::taps_picture(kk, &taps),
         );
+        let shown = k.min(OVERVIEW_HITS);
         overview.push((format!("{name} taps"), tap_cell));
-        for c in 0..k {
+        for c in 0..shown {
             match cells.get(c) {
                 Some(cell) => overview.push(cell.clone()),
                 None => overview.push((
@@ -207,14 +271,23 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             }
         }
     }
-    if !overview.is_empty() {
-        let s = sheet_with_columns(
-            "probe: each row a kernel, its taps, then its strongest patches",
-            &overview,
-            k + 1,
+    let columns = k.min(OVERVIEW_HITS) + 1;
+    let rows_per_page = OVERVIEW_ROWS * columns;
+    let pages = overview.len().div_ceil(rows_per_page);
+    for (page, part) in overview.chunks(rows_per_page).enumerate() {
+        let mut title = format!(
+            "probe: each row a kernel, its taps, then its {} strongest patches",
+            columns - 1
         );
+        if k > OVERVIEW_HITS {
+            title += &format!(" (of {k}: all in kernels/ and probe.csv)");
+        }
+        if pages > 1 {
+            title += &format!(", page {} of {pages}", page + 1);
+        }
+        let s = sheet_with_columns(&title, part, columns);
         crate::render::write_png(
-            &out.join("overview.png"),
+            &out.join(page_name("overview", page)),
             s.as_raw(),
             s.width(),
             s.height(),

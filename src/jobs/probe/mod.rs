@@ -106,7 +106,7 @@ impl PartialOrd for Candidate {
 fn best_of(map: &[f32], base: usize, t: usize) -> Vec<Candidate> {
     use std::cmp::Reverse;
     use std::collections::BinaryHeap;
-    let mut heap: BinaryHeap<Reverse<Candidate>> = BinaryHeap::with_capacity(t + 1);
+    let mut heap: BinaryHeap<Reverse<Candidate>> = BinaryHeap::with_capacity(t.min(map.len()) + 1);
     for (j, &v) in map.iter().enumerate() {
         if !v.is_finite() {
             continue;
@@ -121,9 +121,11 @@ fn best_of(map: &[f32], base: usize, t: usize) -> Vec<Candidate> {
         let c = Candidate { v, i: base + j };
         if heap.len() < t {
             heap.push(Reverse(c));
-        } else if c > heap.peek().expect("full").0 {
-            heap.pop();
-            heap.push(Reverse(c));
+        } else if let Some(mut worst) = heap.peek_mut() {
+            // Replace the worst kept sample in place: one sift, not a pop and a push.
+            if c > worst.0 {
+                *worst = Reverse(c);
+            }
         }
     }
     let mut out: Vec<Candidate> = heap.into_iter().map(|r| r.0).collect();
@@ -161,7 +163,10 @@ pub fn channel_hits(
         .collect();
     best.sort_unstable_by(|a, b| b.cmp(a));
     best.truncate(t);
-    let mut kept: Vec<(usize, usize)> = Vec::with_capacity(k);
+    // Never more hits than samples, whatever `k` asks for.
+    let k = k.min(map.len());
+    let mut grid: std::collections::HashMap<(usize, usize), Vec<(usize, usize)>> =
+        std::collections::HashMap::new();
     let (_, ih, iw) = img.data.dim();
     let mut out = Vec::with_capacity(k);
     for Candidate { v, i } in best {
@@ -169,13 +174,22 @@ pub fn channel_hits(
             break;
         }
         let (y, x) = (i / w, i % w);
-        if kept
-            .iter()
-            .any(|(ky, kx)| y.abs_diff(*ky) < sy && x.abs_diff(*kx) < sx)
-        {
+        // Kept hits by grid cell of the separation's size: one closer than
+        // (sy, sx) lies in this cell or a neighbouring one.
+        let (cy, cx) = (y / sy, x / sx);
+        let near = (cy.saturating_sub(1)..=cy + 1).any(|gy| {
+            (cx.saturating_sub(1)..=cx + 1).any(|gx| {
+                grid.get(&(gy, gx))
+                    .is_some_and(|list: &Vec<(usize, usize)>| {
+                        list.iter()
+                            .any(|(ky, kx)| y.abs_diff(*ky) < sy && x.abs_diff(*kx) < sx)
+                    })
+            })
+        });
+        if near {
             continue;
         }
-        kept.push((y, x));
+        grid.entry((cy, cx)).or_default().push((y, x));
         let region = region_of(field, y, x);
         let clipped = region.0 < 0
             || region.1 < 0
