@@ -163,10 +163,16 @@ def w7(d, rng):
     for i in range(n):
         np.save(os.path.join(arr_dir, "cap-%03d.npy" % i), np.roll(base, 17 * i, axis=1))
     # tapmap writes 16-bit grey PNG views of the identity maps: these are the inputs.
+    # (`--act abs` marks the maps non-negative, so their views are grey, not the
+    # 8-bit diverging scale of signed maps; the values are positive, so it changes
+    # none. The views are moved out of the run folder: tapmap never reads a run's
+    # outputs as input.)
     made = os.path.join(d, "w7-made")
-    subprocess.run([tapmap, "apply", "-q", "--bank", "identity", "--save", "views", "--view-depth", "16",
-                    "--view-range", "0,1", "--out", made, os.path.join(arr_dir, "*.npy")], check=True)
-    pngs = os.path.join(made, "views")
+    subprocess.run([tapmap, "apply", "-q", "--bank", "identity", "--act", "abs", "--save", "views",
+                    "--view-depth", "16", "--view-range", "0,1", "--out", made,
+                    os.path.join(arr_dir, "*.npy")], check=True)
+    pngs = os.path.join(d, "w7-pngs")
+    os.rename(os.path.join(made, "views"), pngs)
     def run(args, inputs=pngs):
         # Time and peak resident memory of one tapmap process. The peak comes from
         # GNU time: a child's own rusage would count this (large) Python process,
