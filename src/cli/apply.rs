@@ -54,6 +54,10 @@ pub struct ApplyArgs {
     /// indexed job (JOB_COMPLETION_INDEX) with N completions. Then `tapmap merge OUT`.
     #[arg(long, value_name = "K/N|auto|auto/N")]
     shard: Option<ShardSpec>,
+    /// At the end, print the run's summary as JSON on stdout (schema
+    /// shared/schemas/summary.schema.json).
+    #[arg(long)]
+    json: bool,
 }
 
 pub fn run(a: ApplyArgs) -> Result<i32, Error> {
@@ -119,6 +123,24 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
             summary.dir.display(),
             if a.save.manifest { ", manifest.json" } else { "" }
         );
+    }
+    if a.json {
+        let s = &summary;
+        let json = serde_json::json!({
+            "format": "tapmap-summary",
+            "summary_version": 1,
+            "processed": s.processed,
+            "failed": s.failed,
+            "resumed": s.resumed,
+            "not_run": s.not_run,
+            "files": s.files,
+            "seconds": s.seconds,
+            "folder": tapmap::jobs::inputs::path_text(&s.dir),
+            "stopped_by_signal": s.stopped_by,
+            "tables_error": s.tables_error,
+            "warnings": s.warnings,
+        });
+        say!("{json}\n");
     }
     if let Some(e) = &summary.tables_error {
         tell!(

@@ -80,7 +80,7 @@ pub struct StageArgs {
     /// larger images fail with a message and the run goes on [default: 4G].
     #[arg(long, value_name = "BYTES", value_parser = tapmap::limits::parse_bytes)]
     pub max_memory: Option<u64>,
-    /// Conv strategy: auto (the planner chooses; `plan` shows the choice and why),
+    /// Conv strategy: auto (the planner chooses; `reckon` shows the choice and why),
     /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks),
     /// fft (large kernels that are not rank 1).
     #[arg(long, default_value = "auto", value_name = "ENGINE")]

@@ -16,15 +16,22 @@ use super::EXIT_OK;
 #[derive(Subcommand)]
 pub enum BankCommand {
     /// List the built-in kernel families with their parameters, and the shipped banks.
-    List,
+    List {
+        /// Print JSON (schema shared/schemas/bank-list.schema.json) instead of text.
+        #[arg(long)]
+        json: bool,
+    },
     /// Print a bank's kernels: taps, sum, L1 norm, rank and factors, symmetry.
     #[command(
         after_help = "Examples:\n  tapmap bank show edges\n  tapmap bank show gaussian:sigma=1,radius=2\n  tapmap bank show my-bank.toml"
     )]
     Show {
-        /// A bank file, a shipped bank, or families joined with '+'.
+        /// A bank file, a shipped bank, or shipped banks and families joined with '+'.
         #[arg(value_name = "NAME|FILE")]
         bank: String,
+        /// Print JSON (schema shared/schemas/bank.schema.json) instead of text.
+        #[arg(long)]
+        json: bool,
     },
     /// Import trained weights (.npy, .npz, safetensors) as a bank file.
     #[command(after_help = "Examples:\n  \
@@ -182,15 +189,21 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             say!("wrote {} ({} kernels)\n", out.display(), b.kernels.len());
             Ok(EXIT_OK)
         }
-        BankCommand::List => {
-            say!("{}", tapmap::kernel::describe::family_list());
+        BankCommand::List { json } => {
+            if json {
+                say!("{:#}\n", tapmap::kernel::describe::family_list_json());
+            } else {
+                say!("{}", tapmap::kernel::describe::family_list());
+            }
             Ok(EXIT_OK)
         }
-        BankCommand::Show { bank } => {
-            say!(
-                "{}",
-                tapmap::kernel::describe::bank_details(&resolve_bank(&bank)?)
-            );
+        BankCommand::Show { bank, json } => {
+            let bank = resolve_bank(&bank)?;
+            if json {
+                say!("{:#}\n", tapmap::kernel::describe::bank_json(&bank));
+            } else {
+                say!("{}", tapmap::kernel::describe::bank_details(&bank));
+            }
             Ok(EXIT_OK)
         }
         BankCommand::Make {

@@ -27,8 +27,8 @@ mod args;
 mod bank;
 mod borders;
 mod merge;
-mod plan;
 mod probe;
+mod reckon;
 
 use std::io::Write;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -65,8 +65,8 @@ enum Command {
     #[command(after_help = apply::AFTER_HELP)]
     Apply(apply::ApplyArgs),
     /// Print each stage's output size, padding, receptive field and cost for an input size.
-    #[command(after_help = plan::AFTER_HELP)]
-    Plan(plan::PlanArgs),
+    #[command(after_help = reckon::AFTER_HELP)]
+    Reckon(reckon::ReckonArgs),
     /// Compare pad modes on real images: band where modes disagree, deviation figures,
     /// difference views, and (with --crop) which mode best stands in for missing pixels.
     #[command(after_help = borders::AFTER_HELP)]
@@ -80,6 +80,26 @@ enum Command {
     /// Built-in kernels and bank files: list, show, make, import, draw.
     #[command(subcommand)]
     Bank(bank::BankCommand),
+    /// Print a shell completion script (bash, zsh or fish).
+    #[command(after_help = "Examples:\n  \
+        source <(tapmap completions bash)\n  \
+        tapmap completions zsh > ~/.zfunc/_tapmap\n  \
+        tapmap completions fish > ~/.config/fish/completions/tapmap.fish")]
+    Completions {
+        /// The shell.
+        #[arg(value_name = "SHELL")]
+        shell: clap_complete::Shell,
+    },
+    /// Print the manual page (roff) of tapmap, or of one command (`tapmap man apply`).
+    #[command(after_help = "Examples:\n  \
+        tapmap man | man -l -\n  \
+        tapmap man bank make | man -l -\n  \
+        tapmap man apply > /usr/local/share/man/man1/tapmap-apply.1")]
+    Man {
+        /// The command, with its subcommand for `bank` (e.g. `bank make`).
+        #[arg(value_name = "COMMAND")]
+        command: Vec<String>,
+    },
 }
 
 /// The first failure to write stdout other than a closed pipe.
@@ -135,11 +155,19 @@ fn run_command() -> i32 {
     };
     let outcome = match cli.command {
         Command::Apply(a) => apply::run(a),
-        Command::Plan(p) => plan::run(p),
+        Command::Reckon(p) => reckon::run(p),
         Command::Borders(b) => borders::run(b),
         Command::Probe(p) => probe::run(p),
         Command::Merge(m) => merge::run(m),
         Command::Bank(b) => bank::run(b),
+        Command::Completions { shell } => {
+            let mut text = Vec::new();
+            let mut cmd = <Cli as clap::CommandFactory>::command();
+            clap_complete::generate(shell, &mut cmd, "tapmap", &mut text);
+            say!("{}", String::from_utf8_lossy(&text));
+            Ok(EXIT_OK)
+        }
+        Command::Man { command } => man_page(&command),
     };
     match outcome {
         Ok(code) => code,
@@ -148,6 +176,28 @@ fn run_command() -> i32 {
             EXIT_USAGE
         }
     }
+}
+
+/// The manual page of tapmap, or of one of its commands (`tapmap-bank-make`).
+fn man_page(command: &[String]) -> Result<i32, Error> {
+    let mut cmd = <Cli as clap::CommandFactory>::command();
+    let mut name = "tapmap".to_string();
+    for part in command {
+        let Some(sub) = cmd.find_subcommand(part).cloned() else {
+            return Err(Error::usage(format!(
+                "'{part}' is not a command of {name}; `{} --help` lists them",
+                name.replace('-', " ")
+            )));
+        };
+        name = format!("{name}-{part}");
+        cmd = sub.name(name.clone());
+    }
+    let mut text = Vec::new();
+    clap_mangen::Man::new(cmd)
+        .render(&mut text)
+        .map_err(|e| Error::usage(format!("cannot draw the manual page: {e}")))?;
+    say!("{}", String::from_utf8_lossy(&text));
+    Ok(EXIT_OK)
 }
 
 /// A rate with three significant digits: `25.5 images/s`, `0.412 images/s`.

@@ -62,10 +62,17 @@ impl InputItem {
 /// with `/`; bytes that are not UTF-8 written `\xNN` and a backslash written
 /// `\\`, so two names that differ only in such bytes never read alike.
 pub fn path_text(p: &Path) -> String {
-    p.components()
-        .map(|c| component_text(c.as_os_str()))
-        .collect::<Vec<_>>()
-        .join("/")
+    let mut out = String::new();
+    for c in p.components() {
+        if !(out.is_empty() || out.ends_with('/')) {
+            out.push('/');
+        }
+        match c {
+            Component::RootDir => out.push('/'),
+            c => out.push_str(&component_text(c.as_os_str())),
+        }
+    }
+    out
 }
 
 #[cfg(unix)]

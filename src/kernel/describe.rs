@@ -117,3 +117,76 @@ pub fn bank_details(bank: &Bank) -> String {
     }
     s
 }
+
+/// [`family_list`] as JSON for scripts (`tapmap bank list --json`); schema
+/// `shared/schemas/bank-list.schema.json`.
+pub fn family_list_json() -> serde_json::Value {
+    use serde_json::json;
+    let families: Vec<serde_json::Value> = FAMILIES
+        .iter()
+        .map(|f| {
+            json!({
+                "name": f.name,
+                "summary": f.summary,
+                "source": f.source,
+                "params": f.params.iter().map(|p| json!({
+                    "name": p.name, "default": p.default, "meaning": p.meaning,
+                })).collect::<Vec<_>>(),
+            })
+        })
+        .collect();
+    let shipped: Vec<serde_json::Value> = SHIPPED_BANKS
+        .iter()
+        .filter_map(|(name, _)| shipped_bank(name).and_then(Result::ok))
+        .map(|b| {
+            json!({
+                "name": b.name,
+                "kernels": b.kernels.len(),
+                "op": b.op.to_string(),
+                "description": b.description,
+            })
+        })
+        .collect();
+    json!({
+        "format": "tapmap-bank-list",
+        "list_version": 1,
+        "families": families,
+        "shipped": shipped,
+    })
+}
+
+/// [`bank_details`] as JSON for scripts (`tapmap bank show --json`): every
+/// kernel with its taps, plane by plane, row by row; schema
+/// `shared/schemas/bank.schema.json`.
+pub fn bank_json(bank: &Bank) -> serde_json::Value {
+    use serde_json::json;
+    let kernels: Vec<serde_json::Value> = bank
+        .kernels
+        .iter()
+        .map(|k| {
+            let planes: Vec<Vec<Vec<f64>>> = k
+                .planes
+                .iter()
+                .map(|p| p.chunks(k.cols.max(1)).map(<[f64]>::to_vec).collect())
+                .collect();
+            json!({
+                "name": k.name,
+                "rows": k.rows,
+                "cols": k.cols,
+                "planes": planes,
+                "scale": k.scale,
+                "bias": k.bias,
+                "origin": k.origin.as_ref().map(|o| o.to_string()),
+            })
+        })
+        .collect();
+    json!({
+        "format": "tapmap-bank",
+        "bank_version": 1,
+        "name": bank.name,
+        "op": bank.op.to_string(),
+        "description": bank.description,
+        "normalize": bank.normalize.as_ref().map(|n| json!({"mean": n.mean, "std": n.std})),
+        "kernels": kernels,
+    })
+}

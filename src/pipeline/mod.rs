@@ -28,7 +28,7 @@ use crate::kernel::Normalize;
 use crate::stage::{Activation, Pool, Recipe, RecipeSpec, Stage};
 
 mod sizes;
-pub use sizes::{sizes_table, StageSizes};
+pub use sizes::{sizes_json, sizes_table, StageSizes};
 
 /// One step of a plan.
 #[derive(Debug)]

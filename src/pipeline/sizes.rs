@@ -82,3 +82,42 @@ pub fn sizes_table(input: (usize, usize, usize), plans: &[StageSizes]) -> String
     );
     s
 }
+
+/// [`sizes_table`] as JSON for scripts (`tapmap reckon --json`); its schema is
+/// `shared/schemas/reckon.schema.json`.
+pub fn sizes_json(input: (usize, usize, usize), plans: &[StageSizes]) -> serde_json::Value {
+    use serde_json::json;
+    let shape = |(c, h, w): (usize, usize, usize)| json!({"channels": c, "height": h, "width": w});
+    let field = |f: ReceptiveField| json!({"size": f.size, "step": f.jump, "before": f.offset});
+    let count = |n: u128| u64::try_from(n).unwrap_or(u64::MAX);
+    let stages: Vec<serde_json::Value> = plans
+        .iter()
+        .enumerate()
+        .map(|(i, p)| {
+            json!({
+                "stage": i + 1,
+                "kind": p.kind,
+                "what": p.what,
+                "input": shape(p.input),
+                "output": shape(p.output),
+                "padding": p.padding.map(|(t, b, l, r)| json!({"top": t, "bottom": b, "left": l, "right": r})),
+                "field": {"rows": field(p.field.0), "cols": field(p.field.1)},
+                "operations": count(p.operations),
+                "unused": {"rows": p.unused.0, "cols": p.unused.1},
+                "engine": p.engine.as_ref().map(|c| json!({"name": c.engine.name(), "reason": c.reason})),
+            })
+        })
+        .collect();
+    let total: u128 = plans
+        .iter()
+        .filter(|p| p.kind == "conv")
+        .map(|p| p.operations)
+        .sum();
+    json!({
+        "format": "tapmap-reckon",
+        "reckon_version": 1,
+        "input": shape(input),
+        "stages": stages,
+        "conv_multiply_adds": count(total),
+    })
+}

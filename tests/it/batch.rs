@@ -642,9 +642,9 @@ fn recipe_file_equals_its_stages_run_by_hand() {
         .assert()
         .success();
     assert_eq!(npy(&out.join("maps/img.npy")).dim(), (2, 4, 3));
-    // plan prints every stage.
+    // reckon prints every stage.
     tapmap()
-        .args(["plan", "--size", "31x20", "--recipe"])
+        .args(["reckon", "--size", "31x20", "--recipe"])
         .arg(&recipe)
         .assert()
         .success()
@@ -652,14 +652,14 @@ fn recipe_file_equals_its_stages_run_by_hand() {
     // Bad recipes: line and column, unknown keys.
     std::fs::write(&recipe, "[[stage]]\nconv = \"edges\"\npadd = \"zero\"\n").unwrap();
     tapmap()
-        .args(["plan", "--size", "9x9", "--recipe"])
+        .args(["reckon", "--size", "9x9", "--recipe"])
         .arg(&recipe)
         .assert()
         .code(2)
         .stderr(predicate::str::contains("line 3").and(predicate::str::contains("padd")));
     std::fs::write(&recipe, "[[stage]]\nact = \"relu\"\npool = \"max\"\n").unwrap();
     tapmap()
-        .args(["plan", "--size", "9x9", "--recipe"])
+        .args(["reckon", "--size", "9x9", "--recipe"])
         .arg(&recipe)
         .assert()
         .code(2)

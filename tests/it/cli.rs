@@ -341,7 +341,7 @@ fn usage_and_setup_errors_exit_2_before_any_work() {
 fn plan_prints_sizes_padding_field_cost_and_unused_edge() {
     let out = tapmap()
         .args([
-            "plan",
+            "reckon",
             "--size",
             "10x10",
             "--bank",
@@ -364,7 +364,7 @@ fn plan_prints_sizes_padding_field_cost_and_unused_edge() {
     assert!(s.contains("3×3 / 4×4"), "{s}");
     tapmap()
         .args([
-            "plan",
+            "reckon",
             "--size",
             "2x2",
             "--bank",
@@ -378,7 +378,7 @@ fn plan_prints_sizes_padding_field_cost_and_unused_edge() {
             "kernel height 5 is larger than the padded input height 2",
         ));
     tapmap()
-        .args(["plan", "--size", "10by10", "--bank", "edges"])
+        .args(["reckon", "--size", "10by10", "--bank", "edges"])
         .assert()
         .code(2);
 }
@@ -486,7 +486,7 @@ fn bank_op_override_flips_the_taps() {
 #[test]
 fn every_engine_can_be_forced_from_the_command_line() {
     // --engine takes every strategy by name; all give the same maps (to f32
-    // rounding), and plan shows the planner's choice with its reason.
+    // rounding), and reckon shows the planner's choice with its reason.
     let t = TempDir::new().unwrap();
     let img = grey16(t.path(), "tile.png", 40, 33);
     let mut maps = Vec::new();
@@ -520,7 +520,7 @@ fn every_engine_can_be_forced_from_the_command_line() {
         assert!(worst <= 1e-5 * scale.max(1.0), "{engine}: off by {worst}");
     }
     let plan = tapmap()
-        .args(["plan", "--size", "512x512", "--bank", "log:sigma=2"])
+        .args(["reckon", "--size", "512x512", "--bank", "log:sigma=2"])
         .assert()
         .success()
         .get_output()
@@ -533,7 +533,7 @@ fn every_engine_can_be_forced_from_the_command_line() {
     );
     tapmap()
         .args([
-            "plan", "--size", "64x64", "--bank", "edges", "--engine", "gpu",
+            "reckon", "--size", "64x64", "--bank", "edges", "--engine", "gpu",
         ])
         .assert()
         .code(2)

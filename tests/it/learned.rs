@@ -444,13 +444,13 @@ fn import_command_writes_a_bank_that_keeps_normalisation_and_applies_it() {
     // Weight files also go straight into --bank, with FILE:TENSOR.
     let st = write(t.path(), "m.safetensors", &safetensors_bytes());
     cargo_bin_cmd!("tapmap")
-        .args(["plan", "--size", "8x8", "--bank"])
+        .args(["reckon", "--size", "8x8", "--bank"])
         .arg(format!("{}:w", st.display()))
         .assert()
         .success()
         .stdout(predicate::str::contains("2×8×8"));
     cargo_bin_cmd!("tapmap")
-        .args(["plan", "--size", "8x8", "--bank"])
+        .args(["reckon", "--size", "8x8", "--bank"])
         .arg(format!("{}:nope", st.display()))
         .assert()
         .code(2)

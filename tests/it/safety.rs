@@ -794,7 +794,7 @@ fn closed_or_full_output_streams_end_quietly_with_a_meaningful_status() {
     assert!(ap.join("maps/a.npy").is_file() && ap.join("manifest.json").is_file());
     // A pipe whose reader has gone (`| head -1`).
     let mut child = Command::new(BIN)
-        .args(["plan", "--bank", "texture", "--size", "4000x3000"])
+        .args(["reckon", "--bank", "texture", "--size", "4000x3000"])
         .stdout(Stdio::piped())
         .stderr(Stdio::piped())
         .spawn()

@@ -344,3 +344,158 @@ fn foreign_and_newer_records_are_refused_with_what_they_are() {
         "{err}"
     );
 }
+
+/// Standard output of a successful tapmap command, parsed as JSON.
+fn json_of(args: &[&str]) -> Value {
+    let out = tapmap()
+        .args(args)
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
+    serde_json::from_slice(&out).unwrap_or_else(|e| panic!("{args:?}: not JSON: {e}"))
+}
+
+#[test]
+fn json_outputs_follow_their_schemas() {
+    for (args, schema) in [
+        (
+            vec!["reckon", "--size", "640x480", "--bank", "edges", "--json"],
+            "reckon.schema.json",
+        ),
+        (
+            vec![
+                "reckon",
+                "--size",
+                "1024x768",
+                "--bank",
+                "blobs",
+                "--extent",
+                "valid",
+                "--stride",
+                "2",
+                "--pool",
+                "max",
+                "--pool-size",
+                "2",
+                "--act",
+                "relu",
+                "--json",
+            ],
+            "reckon.schema.json",
+        ),
+        (vec!["bank", "list", "--json"], "bank-list.schema.json"),
+        (
+            vec!["bank", "show", "edges+smooth", "--json"],
+            "bank.schema.json",
+        ),
+    ] {
+        let v = json_of(&args);
+        check_file(&v, schema).unwrap_or_else(|e| panic!("{args:?}: {e}"));
+    }
+    // The JSON says what the text says.
+    let r = json_of(&["reckon", "--size", "640x480", "--bank", "edges", "--json"]);
+    assert_eq!(r["stages"][0]["output"]["channels"], 3);
+    assert_eq!(r["stages"][0]["field"]["rows"]["size"], 3);
+    let b = json_of(&["bank", "show", "sobel-x", "--json"]);
+    // Sobel x, [1 2 1]ᵀ ⊗ [−1 0 1] (Szeliski 2010, §3.2.1, Fig. 3.14, as the
+    // family's own source line cites).
+    assert_eq!(
+        b["kernels"][0]["planes"][0],
+        serde_json::json!([[-1.0, 0.0, 1.0], [-2.0, 0.0, 2.0], [-1.0, 0.0, 1.0]])
+    );
+    let l = json_of(&["bank", "list", "--json"]);
+    assert!(l["shipped"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|s| s["name"] == "edges"));
+
+    let t = tempfile::TempDir::new().unwrap();
+    let out = t.path().join("o");
+    let s = json_of(&[
+        "apply",
+        "--bank",
+        "edges",
+        "-q",
+        "--json",
+        "-o",
+        out.to_str().unwrap(),
+        sample("line-a/s1-glaze/tile-0001-crack.png")
+            .to_str()
+            .unwrap(),
+    ]);
+    check_file(&s, "summary.schema.json").unwrap();
+    assert_eq!(s["processed"], 1);
+    assert_eq!(s["folder"], out.to_str().unwrap());
+}
+
+#[test]
+fn completions_load_in_bash_and_the_manual_renders() {
+    let script = tapmap()
+        .args(["completions", "bash"])
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
+    let t = tempfile::TempDir::new().unwrap();
+    let file = t.path().join("tapmap.bash");
+    std::fs::write(&file, &script).unwrap();
+    // Loaded into bash, the script registers a completion for tapmap.
+    let o = std::process::Command::new("bash")
+        .arg("-c")
+        .arg(format!("source {} && complete -p tapmap", file.display()))
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(String::from_utf8_lossy(&o.stdout).contains("tapmap"));
+    for shell in ["zsh", "fish"] {
+        let s = tapmap()
+            .args(["completions", shell])
+            .assert()
+            .success()
+            .get_output()
+            .stdout
+            .clone();
+        assert!(String::from_utf8_lossy(&s).contains("reckon"), "{shell}");
+    }
+    for page in [
+        vec!["man"],
+        vec!["man", "apply"],
+        vec!["man", "bank", "make"],
+    ] {
+        let roff = tapmap()
+            .args(&page)
+            .assert()
+            .success()
+            .get_output()
+            .stdout
+            .clone();
+        let roff = String::from_utf8(roff).unwrap();
+        assert!(
+            roff.starts_with(".ie") || roff.contains(".TH"),
+            "{page:?}: not roff"
+        );
+        let f = t.path().join("page.1");
+        std::fs::write(&f, &roff).unwrap();
+        // `man -l` renders it, where man is installed.
+        if let Ok(o) = std::process::Command::new("man")
+            .arg("-l")
+            .arg(&f)
+            .env("MANPAGER", "cat")
+            .env("PAGER", "cat")
+            .output()
+        {
+            if o.status.success() {
+                let text = String::from_utf8_lossy(&o.stdout);
+                assert!(
+                    text.contains("NAME") && text.contains("SYNOPSIS"),
+                    "{page:?}: {text}"
+                );
+            }
+        }
+    }
+    tapmap().args(["man", "nothing"]).assert().code(2);
+}
