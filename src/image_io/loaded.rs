@@ -102,10 +102,12 @@ pub struct ImageMeta {
     pub orientation: Option<u16>,
     /// Whether the orientation was applied.
     pub orientation_applied: bool,
-    /// EXIF DateTimeOriginal (or DateTime), as written.
+    /// EXIF DateTimeOriginal (or DateTime) in ISO 8601 (`2026-11-30T22:14:05`,
+    /// with its offset when the file records one), or as written when it is
+    /// not a date the EXIF standard allows.
     pub captured: Option<String>,
-    /// EXIF ExposureTime in seconds, as written (e.g. `1/250`).
-    pub exposure: Option<String>,
+    /// EXIF ExposureTime in seconds (1/250 is 0.004).
+    pub exposure: Option<f64>,
 }
 
 /// A decoded image ready for a recipe.

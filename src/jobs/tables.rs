@@ -209,7 +209,7 @@ impl ImageRow {
             known(&|m| optional(&m.orientation)),
             known(&|m| m.orientation_applied.to_string()),
             known(&|m| optional(&m.captured)),
-            known(&|m| optional(&m.exposure)),
+            known(&|m| m.exposure.map_or(String::new(), number)),
             if self.error.is_none() { "ok" } else { "failed" }.to_string(),
             optional(&self.error),
             self.maps_written.to_string(),

@@ -202,8 +202,8 @@ pub fn without_times(name: &std::path::Path, bytes: &[u8]) -> Vec<u8> {
     fn strip(v: &mut serde_json::Value) {
         match v {
             serde_json::Value::Object(o) => {
-                o.remove("modified");
-                o.remove("check");
+                o.shift_remove("modified");
+                o.shift_remove("check");
                 o.values_mut().for_each(strip);
             }
             serde_json::Value::Array(a) => a.iter_mut().for_each(strip),
@@ -227,7 +227,7 @@ pub fn without_times(name: &std::path::Path, bytes: &[u8]) -> Vec<u8> {
             strip(&mut m);
             if let Some(o) = m.as_object_mut() {
                 for k in ["started", "finished", "seconds", "command_line", "resumed"] {
-                    o.remove(k);
+                    o.shift_remove(k);
                 }
             }
             serde_json::to_vec(&m).unwrap()
