@@ -200,8 +200,12 @@ fn man_page(command: &[String]) -> Result<i32, Error> {
     Ok(EXIT_OK)
 }
 
-/// A rate with three significant digits: `25.5 images/s`, `0.412 images/s`.
+/// A rate with three significant digits (two from 10 to 100, none above):
+/// `25.5 images/s`, `0.412 images/s`, `134 images/s`.
 fn rate_text(per_second: f64, what: &str) -> String {
+    if !per_second.is_finite() {
+        return format!("- {what}/s");
+    }
     let digits = if per_second >= 100.0 {
         0
     } else if per_second >= 10.0 {
@@ -237,11 +241,18 @@ impl Terminal {
             ProgressBar::hidden()
         } else {
             let b = ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr());
+            let unit = what.to_string();
             b.set_style(
                 ProgressStyle::with_template(&format!(
-                    "{{bar:30}} {{pos}}/{{len}} {what}  {{per_sec}}  eta {{eta}}"
+                    "{{bar:30}} {{pos}}/{{len}} {what}  {{rate}}  eta {{eta}}"
                 ))
-                .expect("valid template"),
+                .expect("valid template")
+                .with_key(
+                    "rate",
+                    move |s: &indicatif::ProgressState, w: &mut dyn std::fmt::Write| {
+                        let _ = w.write_str(&rate_text(s.per_sec(), &unit));
+                    },
+                ),
             );
             b
         };
@@ -298,4 +309,18 @@ fn command_line() -> Vec<String> {
             None => tapmap::jobs::inputs::path_text(std::path::Path::new(&a)),
         })
         .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::rate_text;
+
+    #[test]
+    fn rates_have_two_or_three_significant_digits() {
+        assert_eq!(rate_text(25.4991, "images"), "25.5 images/s");
+        assert_eq!(rate_text(134.49, "images"), "134 images/s");
+        assert_eq!(rate_text(3.14159, "images"), "3.14 images/s");
+        assert_eq!(rate_text(0.41234, "images"), "0.412 images/s");
+        assert_eq!(rate_text(f64::INFINITY, "images"), "- images/s");
+    }
 }

@@ -119,11 +119,17 @@ fn sheets_carry_labels_in_the_bitmap_font() {
 
 #[test]
 fn csv_columns_match_the_shipped_schemas() {
+    use tapmap::jobs::borders::{BANDS_COLUMNS, BORDERS_COLUMNS, SUMMARY_COLUMNS};
+    use tapmap::jobs::probe::PROBE_COLUMNS;
     use tapmap::jobs::tables::{IMAGES_COLUMNS, STATS_COLUMNS};
     let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("shared/schemas");
     for (file, cols) in [
         ("stats.csv.json", &STATS_COLUMNS[..]),
         ("images.csv.json", &IMAGES_COLUMNS[..]),
+        ("probe.csv.json", &PROBE_COLUMNS[..]),
+        ("borders.csv.json", &BORDERS_COLUMNS[..]),
+        ("bands.csv.json", &BANDS_COLUMNS[..]),
+        ("summary.csv.json", &SUMMARY_COLUMNS[..]),
     ] {
         let v: serde_json::Value =
             serde_json::from_str(&std::fs::read_to_string(dir.join(file)).unwrap()).unwrap();

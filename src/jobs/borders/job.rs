@@ -20,6 +20,24 @@ use crate::jobs::tables::{number, optional_number, write_csv};
 use crate::jobs::{for_each_parallel, thread_pool, Observer, Stop};
 use crate::stage::RecipeSpec;
 
+/// Column names of `borders.csv` (schema `shared/schemas/borders.csv.json`).
+pub const BORDERS_COLUMNS: [&str; 9] = [
+    "path", "study", "channel", "name", "mode", "distance", "mean_abs", "max_abs", "pixels",
+];
+/// Column names of `bands.csv` (schema `shared/schemas/bands.csv.json`).
+pub const BANDS_COLUMNS: [&str; 6] = ["path", "channel", "name", "edge", "band", "predicted"];
+/// Column names of `summary.csv` (schema `shared/schemas/summary.csv.json`).
+pub const SUMMARY_COLUMNS: [&str; 8] = [
+    "path",
+    "mode",
+    "band",
+    "mean_dev",
+    "max_dev",
+    "crop_mean",
+    "crop_max",
+    "best",
+];
+
 /// Everything a border study needs.
 #[derive(Debug, Clone)]
 pub struct BordersJob {
@@ -113,32 +131,9 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
             }
         }
     }
-    write_csv(
-        &out.join("borders.csv"),
-        &[
-            "path", "study", "channel", "name", "mode", "distance", "mean_abs", "max_abs", "pixels",
-        ],
-        rows,
-    )?;
-    write_csv(
-        &out.join("bands.csv"),
-        &["path", "channel", "name", "edge", "band", "predicted"],
-        bands,
-    )?;
-    write_csv(
-        &out.join("summary.csv"),
-        &[
-            "path",
-            "mode",
-            "band",
-            "mean_dev",
-            "max_dev",
-            "crop_mean",
-            "crop_max",
-            "best",
-        ],
-        summary_rows,
-    )?;
+    write_csv(&out.join("borders.csv"), &BORDERS_COLUMNS, rows)?;
+    write_csv(&out.join("bands.csv"), &BANDS_COLUMNS, bands)?;
+    write_csv(&out.join("summary.csv"), &SUMMARY_COLUMNS, summary_rows)?;
     if !all_curves.is_empty() {
         let curves: Vec<(PadMode, Vec<f64>)> = all_curves
             .into_iter()

@@ -29,7 +29,9 @@ mod ring;
 pub use ring::Ring;
 use ring::{ring_outputs, Reach};
 
-pub use job::{run_borders, BordersJob, BordersSummary};
+pub use job::{
+    run_borders, BordersJob, BordersSummary, BANDS_COLUMNS, BORDERS_COLUMNS, SUMMARY_COLUMNS,
+};
 
 use ndarray::{s, ArrayView3};
 

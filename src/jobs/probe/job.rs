@@ -18,6 +18,12 @@ use crate::pipeline::PlanCache;
 use crate::render::sheet::{sheet, sheet_with_columns};
 use crate::stage::{RecipeSpec, Stage};
 
+/// Column names of `probe.csv` (schema `shared/schemas/probe.csv.json`).
+pub const PROBE_COLUMNS: [&str; 12] = [
+    "channel", "kernel", "rank", "path", "x", "y", "response", "box_x", "box_y", "box_w", "box_h",
+    "clipped",
+];
+
 /// Everything a probe needs.
 #[derive(Debug, Clone)]
 pub struct ProbeJob {
@@ -294,13 +300,6 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             image::ExtendedColorType::Rgb8,
         )?;
     }
-    write_csv(
-        &out.join("probe.csv"),
-        &[
-            "channel", "kernel", "rank", "path", "x", "y", "response", "box_x", "box_y", "box_w",
-            "box_h", "clipped",
-        ],
-        rows,
-    )?;
+    write_csv(&out.join("probe.csv"), &PROBE_COLUMNS, rows)?;
     Ok(())
 }

@@ -18,7 +18,7 @@
 
 mod job;
 
-pub use job::{run_probe, ProbeJob, ProbeSummary};
+pub use job::{run_probe, ProbeJob, ProbeSummary, PROBE_COLUMNS};
 
 use std::cmp::Ordering;
 
