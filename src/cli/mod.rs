@@ -319,7 +319,7 @@ mod tests {
     fn rates_have_two_or_three_significant_digits() {
         assert_eq!(rate_text(25.4991, "images"), "25.5 images/s");
         assert_eq!(rate_text(134.49, "images"), "134 images/s");
-        assert_eq!(rate_text(3.14159, "images"), "3.14 images/s");
+        assert_eq!(rate_text(3.456, "images"), "3.46 images/s");
         assert_eq!(rate_text(0.41234, "images"), "0.412 images/s");
         assert_eq!(rate_text(f64::INFINITY, "images"), "- images/s");
     }
