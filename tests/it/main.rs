@@ -15,6 +15,7 @@ mod identities;
 mod kernels;
 mod learned;
 mod published;
+mod readme;
 mod regression;
 mod render;
 mod resume;
