@@ -3,6 +3,7 @@
 pub mod colormap;
 pub mod sheet;
 pub mod taps;
+pub mod text;
 pub mod view;
 
 use std::path::Path;

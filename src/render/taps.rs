@@ -73,7 +73,7 @@ pub fn draw_bank(bank: &Bank) -> RgbImage {
         .iter()
         .map(|k| {
             (
-                format!("{} +-{}", k.name, short(extreme(k))),
+                format!("{} ±{}", k.name, short(extreme(k))),
                 taps_picture(k, &table),
             )
         })
@@ -85,7 +85,7 @@ pub fn draw_bank(bank: &Bank) -> RgbImage {
         bank.op
     );
     let grid = sheet(&title, &cells);
-    let legend_h = 46;
+    let legend_h = 54;
     let mut out = RgbImage::from_pixel(
         grid.width().max(300),
         grid.height() + legend_h,
@@ -108,14 +108,16 @@ pub fn draw_bank(bank: &Bank) -> RgbImage {
         }
     }
     draw_text(&mut out, x0, y0 + 16, "-max", ink);
-    draw_text(&mut out, x0 + 124, y0 + 16, "0", ink);
-    draw_text(&mut out, x0 + 224, y0 + 16, "+max", ink);
+    let zero = crate::render::text::text_width("0") / 2;
+    draw_text(&mut out, x0 + 128 - zero, y0 + 16, "0", ink);
+    let plus = crate::render::text::text_width("+max");
+    draw_text(&mut out, x0 + 256 - plus, y0 + 16, "+max", ink);
     let note = if three {
         "rgb planes, grey = 0"
     } else {
-        "each kernel: own +-max"
+        "each kernel: own ±max"
     };
-    draw_text(&mut out, x0, y0 + 28, note, ink);
+    draw_text(&mut out, x0, y0 + 16 + crate::render::text::LINE, note, ink);
     out
 }
 

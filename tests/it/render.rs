@@ -103,18 +103,39 @@ fn views_map_values_to_levels_as_recorded() {
 }
 
 #[test]
-fn sheets_carry_labels_in_the_bitmap_font() {
+fn sheets_carry_whole_labels_in_the_bundled_font() {
     let cell = image::RgbImage::from_pixel(20, 10, image::Rgb([0, 0, 0]));
     let s = sheet(
         "title",
-        &[("alpha".into(), cell.clone()), ("beta".into(), cell)],
+        &[
+            ("alpha".into(), cell.clone()),
+            ("beta".into(), cell.clone()),
+        ],
     );
     assert!(s.width() >= 192 && s.height() > 96);
-    let ink = s.pixels().filter(|p| p.0 == [232, 230, 222]).count();
-    assert!(ink > 40, "labels drawn: {ink} ink pixels");
-    let mut blank = image::RgbImage::new(16, 8);
-    draw_text(&mut blank, 0, 0, "I", image::Rgb([255, 255, 255]));
-    assert!(blank.pixels().any(|p| p.0 == [255, 255, 255]));
+    let inked = |img: &image::RgbImage| img.pixels().filter(|p| p.0[0] > 150).count();
+    assert!(inked(&s) > 40, "labels drawn: {} ink pixels", inked(&s));
+    // A label wider than its cell wraps onto more lines: the sheet grows, and
+    // no text is cut off (the old sheets ended such labels with '~').
+    let long = "sobel-x@r [-0.125, 0.125] a name much wider than one cell of the sheet";
+    let l = sheet(
+        "title",
+        &[(long.into(), cell.clone()), ("beta".into(), cell)],
+    );
+    assert!(
+        l.height() >= s.height() + 2 * tapmap::render::text::LINE,
+        "{} vs {}",
+        l.height(),
+        s.height()
+    );
+    assert!(inked(&l) > inked(&s));
+    // '|' is its own glyph (the old 8×8 font drew it as '!').
+    let draw = |t: &str| {
+        let mut img = image::RgbImage::new(12, tapmap::render::text::LINE);
+        draw_text(&mut img, 0, 0, t, image::Rgb([255, 255, 255]));
+        img
+    };
+    assert_ne!(draw("|"), draw("!"));
 }
 
 #[test]

@@ -366,8 +366,8 @@ fn label_num(v: f64) -> String {
 }
 
 /// Plots error against distance from the edge, one line per mode, and writes a PNG.
-/// plotters maps coordinates and draws the lines; labels use the bitmap font so no
-/// system font is needed.
+/// plotters maps coordinates and draws the lines; labels use the bundled font
+/// ([`crate::render::text`]), so no system font is needed.
 pub fn write_plot(
     path: &Path,
     title: &str,
@@ -530,7 +530,7 @@ pub fn write_plot(
     let mut img = RgbImage::from_raw(W, H, buf).expect("the buffer was made W × H × 3");
     let ink = Rgb([40, 40, 46]);
     for (x, y, text, centred) in labels {
-        let width = 8 * text.chars().count() as i32;
+        let width = crate::render::text::text_width(&text) as i32;
         let x0 = if centred {
             x - width / 2
         } else if x < legend_x {
@@ -544,11 +544,11 @@ pub fn write_plot(
     let xl = "distance from the edge (output pixels)";
     draw_text(
         &mut img,
-        (78 + (W as i32 - 228) / 2 - 4 * xl.len() as i32).max(0) as u32,
+        (78 + (W as i32 - 228) / 2 - crate::render::text::text_width(xl) as i32 / 2).max(0) as u32,
         H - 22,
         xl,
         ink,
     );
-    draw_text(&mut img, 8, 22, &y_label, ink);
+    draw_text(&mut img, 8, 10 + crate::render::text::LINE, &y_label, ink);
     write_png(path, img.as_raw(), W, H, image::ExtendedColorType::Rgb8)
 }
