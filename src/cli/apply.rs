@@ -16,7 +16,7 @@ pub const AFTER_HELP: &str = "Examples:\n  \
     tapmap apply --bank my-filters.toml --color rgb --act relu --pool max --pool-size 2 --out fm photos/\n\n\
     Outputs mirror each input's path below its folder or pattern root:\n  \
     OUT/maps/P.npy (float32 C×H×W, numpy.load), OUT/views/P/NN-name.png, OUT/sheets/P.png,\n  \
-    OUT/tiff/P/NN-name.tif, OUT/stats.csv, OUT/images.csv, OUT/manifest.json.";
+    OUT/tiff/P/NN-name.tif, OUT/keys/P/NN-name.png, OUT/stats.csv, OUT/images.csv, OUT/manifest.json.";
 
 #[derive(Args)]
 pub struct ApplyArgs {
@@ -24,7 +24,8 @@ pub struct ApplyArgs {
     stage: StageArgs,
     #[command(flatten)]
     io: RunArgs,
-    /// What to write, comma-separated: maps, tiff, views, sheets, stats, manifest, or all.
+    /// What to write, comma-separated: maps, tiff, views, sheets, stats, manifest, keys
+    /// (each view with its name and colour key, for people), or all.
     /// images.csv is always written.
     #[arg(long, default_value = "maps,views,stats,manifest", value_name = "LIST")]
     save: Save,

@@ -51,6 +51,9 @@ pub struct Save {
     pub stats: bool,
     /// `manifest.json`.
     pub manifest: bool,
+    /// A picture per map for people: its view with the map's name and colour
+    /// key (`keys/P/NN-name.png`; views stay plain level-per-pixel pictures).
+    pub keys: bool,
 }
 
 impl Default for Save {
@@ -62,14 +65,17 @@ impl Default for Save {
             sheets: false,
             stats: true,
             manifest: true,
+            keys: false,
         }
     }
 }
 
-const SAVE_NAMES: [&str; 6] = ["maps", "tiff", "views", "sheets", "stats", "manifest"];
+const SAVE_NAMES: [&str; 7] = [
+    "maps", "tiff", "views", "sheets", "stats", "manifest", "keys",
+];
 
 impl Save {
-    fn flags(&self) -> [bool; 6] {
+    fn flags(&self) -> [bool; 7] {
         [
             self.maps,
             self.tiff,
@@ -77,18 +83,20 @@ impl Save {
             self.sheets,
             self.stats,
             self.manifest,
+            self.keys,
         ]
     }
 }
 
 impl FromStr for Save {
     type Err = String;
-    /// A comma-separated list of maps, tiff, views, sheets, stats, manifest, or `all`.
+    /// A comma-separated list of maps, tiff, views, sheets, stats, manifest,
+    /// keys, or `all`.
     fn from_str(s: &str) -> Result<Self, String> {
-        let mut f = [false; 6];
+        let mut f = [false; 7];
         for part in s.split(',').map(str::trim).filter(|p| !p.is_empty()) {
             if part == "all" {
-                f = [true; 6];
+                f = [true; 7];
                 continue;
             }
             let i = SAVE_NAMES.iter().position(|n| *n == part).ok_or_else(|| {
@@ -106,6 +114,7 @@ impl FromStr for Save {
             sheets: f[3],
             stats: f[4],
             manifest: f[5],
+            keys: f[6],
         })
     }
 }

@@ -65,6 +65,49 @@ impl ViewImage {
     }
 }
 
+impl ViewImage {
+    /// The picture for a sheet cell: at most [`crate::render::sheet::MAX_CELL`]
+    /// on its longer side, shrunk by a whole factor n with each pixel the mean
+    /// *level* of an n × n block, coloured afterwards. Levels stand linearly for
+    /// values, so the cell shows the blocks' mean values; averaging colours
+    /// instead would mix a diverging scale's two hues into colours it does not
+    /// hold.
+    pub fn cell(&self, table: &[[u8; 3]]) -> ImageBuffer<Rgb<u8>, Vec<u8>> {
+        let (w, h) = match self {
+            ViewImage::Grey8(g) | ViewImage::Indexed(g) => g.dimensions(),
+            ViewImage::Grey16(g) => g.dimensions(),
+        };
+        let side = w.max(h).max(1);
+        let max = crate::render::sheet::MAX_CELL;
+        if side <= max {
+            return self.to_rgb8(table);
+        }
+        let n = side.div_ceil(max);
+        let level = |x: u32, y: u32| -> f64 {
+            match self {
+                ViewImage::Grey8(g) | ViewImage::Indexed(g) => f64::from(g.get_pixel(x, y)[0]),
+                ViewImage::Grey16(g) => f64::from(g.get_pixel(x, y)[0]) / 257.0,
+            }
+        };
+        let indexed = matches!(self, ViewImage::Indexed(_));
+        ImageBuffer::from_fn(w.div_ceil(n), h.div_ceil(n), |x, y| {
+            let (mut sum, mut count) = (0.0, 0.0);
+            for yy in y * n..((y + 1) * n).min(h) {
+                for xx in x * n..((x + 1) * n).min(w) {
+                    sum += level(xx, yy);
+                    count += 1.0;
+                }
+            }
+            let l = (sum / count).round().clamp(0.0, 255.0) as u8;
+            if indexed {
+                Rgb(table[l as usize])
+            } else {
+                Rgb([l, l, l])
+            }
+        })
+    }
+}
+
 /// Chooses the mapping for a map (its extremes found in parallel).
 pub fn mapping(
     values: &[f32],

@@ -163,3 +163,69 @@ fn csv_columns_match_the_shipped_schemas() {
         assert_eq!(names, cols, "{file}");
     }
 }
+
+#[test]
+fn keyed_views_and_sheets_carry_the_scale_with_its_values() {
+    let t = tempfile::TempDir::new().unwrap();
+    let img = image::ImageBuffer::from_fn(40, 30, |x, _| image::Luma([(x * 6) as u8]));
+    let p = t.path().join("ramp.png");
+    img.save(&p).unwrap();
+    let out = t.path().join("o");
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_tapmap"))
+        .args([
+            "apply",
+            "--bank",
+            "sobel-x+box:size=3",
+            "--save",
+            "keys,sheets",
+            "-q",
+            "-o",
+        ])
+        .arg(&out)
+        .arg(&p)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let tab = tapmap::render::colormap::table();
+    // A signed map: the diverging key runs from the table's first colour to its
+    // last; find its bar by its first pixel.
+    let key = image::open(out.join("keys/ramp/00-sobel-x.png"))
+        .unwrap()
+        .to_rgb8();
+    let bar = (0..key.height())
+        .find(|&y| key.get_pixel(8, y).0 == tab[0])
+        .expect("a bar starting with the scale's first colour");
+    let right = (8..key.width())
+        .rev()
+        .find(|&x| key.get_pixel(x, bar).0 == tab[255]);
+    assert!(
+        right.is_some_and(|r| r > 60),
+        "the bar ends with the last colour"
+    );
+    let mid = (8 + right.unwrap()) / 2;
+    let c = key.get_pixel(mid, bar).0;
+    assert!(
+        c.iter().all(|v| (200..=235).contains(v)),
+        "centre {c:?} is the scale's light grey"
+    );
+    // Its numbers and unit are drawn under the bar: ink there.
+    let ink = (bar + 12..(bar + 12 + 2 * tapmap::render::text::LINE).min(key.height()))
+        .flat_map(|y| (8..right.unwrap()).map(move |x| (x, y)))
+        .filter(|&(x, y)| key.get_pixel(x, y).0[0] > 150)
+        .count();
+    assert!(ink > 60, "{ink} ink pixels under the key");
+    // A non-negative map's key is grey, black to white.
+    let g = image::open(out.join("keys/ramp/01-box_size=3.png"))
+        .unwrap()
+        .to_rgb8();
+    let bar = (0..g.height())
+        .find(|&y| {
+            let next = g.get_pixel(9, y).0;
+            g.get_pixel(8, y).0 == [0, 0, 0] && next[0] > 0 && next[0] < 5 && next[0] == next[2]
+        })
+        .expect("a grey bar from black");
+    assert!((8..g.width()).any(|x| g.get_pixel(x, bar).0 == [255, 255, 255]));
+    // The sheet carries the same keys.
+    let sheet = image::open(out.join("sheets/ramp.png")).unwrap().to_rgb8();
+    assert!(sheet.pixels().any(|p| p.0 == tab[0]) && sheet.pixels().any(|p| p.0 == tab[255]));
+}

@@ -187,11 +187,12 @@ fn first_overflowed(maps: &Array3<f32>) -> Option<usize> {
 /// What one map of an image gave: the files written for it (each only once
 /// whole), its statistics, its view's mapping and its sheet cell.
 #[derive(Default)]
-struct MapOut {
+struct MapOut<'a> {
     tiff: Option<PathBuf>,
     view: Option<(PathBuf, crate::render::view::ViewMapping)>,
+    key: Option<PathBuf>,
     stats: Option<crate::stats::MapStats>,
-    cell: Option<(String, image::RgbImage)>,
+    cell: Option<sheet::Cell<'a>>,
     error: Option<Error>,
 }
 
@@ -215,7 +216,7 @@ fn write_outputs(
     let data = maps.as_slice().expect("plans return standard layout");
     let plane = |k: usize| &data[k * h * w..(k + 1) * h * w];
     let file_of = |k: usize, ext: &str| format!("{k:02}-{}.{ext}", safe_name(&names[k]));
-    let draw = cx.save.views || cx.save.sheets;
+    let draw = cx.save.views || cx.save.sheets || cx.save.keys;
     if draw && cx.view.depth16 {
         let signed: Vec<&str> = (0..c)
             .filter(|&k| !nonneg[k])
@@ -274,11 +275,34 @@ fn write_outputs(
                 })
             };
             if let Some((pic, m)) = pic {
+                let key = sheet::Key {
+                    table: matches!(m.scale, view::Scale::Diverging).then_some(cx.table),
+                    lo: m.lo,
+                    hi: m.hi,
+                };
+                if cx.save.keys {
+                    let cell = sheet::Cell {
+                        label: format!("map {k:02}: {}", names[k]),
+                        picture: pic.cell(cx.table),
+                        key: Some(key),
+                    };
+                    let s = sheet::sheet_of(&item.rel_string(), &[cell], 1);
+                    let p = out.join("keys").join(&stem).join(file_of(k, "png"));
+                    write_png(
+                        &p,
+                        s.as_raw(),
+                        s.width(),
+                        s.height(),
+                        image::ExtendedColorType::Rgb8,
+                    )?;
+                    o.key = Some(p);
+                }
                 if cx.save.sheets {
-                    o.cell = Some((
-                        format!("{} [{}, {}]", names[k], sig3(m.lo), sig3(m.hi)),
-                        pic.to_rgb8(cx.table),
-                    ));
+                    o.cell = Some(sheet::Cell {
+                        label: format!("{k:02} {}", names[k]),
+                        picture: pic.cell(cx.table),
+                        key: Some(key),
+                    });
                 }
                 if cx.save.views {
                     let p = out.join("views").join(&stem).join(file_of(k, "png"));
@@ -305,6 +329,7 @@ fn write_outputs(
     let mut per_map = per_map;
     for o in &per_map {
         written.extend(o.tiff.iter().cloned());
+        written.extend(o.key.iter().cloned());
         written.extend(o.view.iter().map(|v| v.0.clone()));
     }
     let npy_ok = match npy_written {
@@ -332,10 +357,17 @@ fn write_outputs(
         if let Some(p) = &o.tiff {
             record(p, entry)?;
         }
+        if let Some(p) = &o.key {
+            record(p, entry)?;
+        }
     }
     let mut cells = Vec::new();
     if cx.save.sheets {
-        cells.push(("source".to_string(), crate::render::input_picture(img)));
+        cells.push(sheet::Cell {
+            label: "source".to_string(),
+            picture: crate::render::input_picture(img),
+            key: None,
+        });
     }
     for (k, o) in per_map.into_iter().enumerate() {
         if let Some(s) = o.stats {
@@ -360,7 +392,7 @@ fn write_outputs(
         cells.extend(o.cell);
     }
     if cx.save.sheets {
-        let s = sheet::sheet(&item.rel_string(), &cells);
+        let s = sheet::sheet_of(&item.rel_string(), &cells, 0);
         let p = item.output_file(&out.join("sheets"), "png");
         write_png(
             &p,
@@ -379,17 +411,4 @@ fn write_outputs(
 /// ([`crate::jobs::inputs::path_text`]).
 pub(crate) fn slash(p: &Path) -> String {
     crate::jobs::inputs::path_text(p)
-}
-
-/// A value with about three significant digits, for sheet labels.
-fn sig3(v: f64) -> String {
-    let a = v.abs();
-    if a == 0.0 || !a.is_finite() {
-        format!("{v}")
-    } else if (1e-3..1e4).contains(&a) {
-        let decimals = (2 - a.log10().floor() as i32).max(0) as usize;
-        format!("{v:.decimals$}")
-    } else {
-        format!("{v:.2e}")
-    }
 }
