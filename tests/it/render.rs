@@ -229,3 +229,45 @@ fn keyed_views_and_sheets_carry_the_scale_with_its_values() {
     let sheet = image::open(out.join("sheets/ramp.png")).unwrap().to_rgb8();
     assert!(sheet.pixels().any(|p| p.0 == tab[0]) && sheet.pixels().any(|p| p.0 == tab[255]));
 }
+
+#[test]
+fn probe_patches_show_their_field_framed_in_context() {
+    let t = tempfile::TempDir::new().unwrap();
+    let img = image::ImageBuffer::from_fn(48, 40, |x, y| {
+        image::Luma([if (x / 6 + y / 6) % 2 == 0 { 200u8 } else { 40 }])
+    });
+    let p = t.path().join("checks.png");
+    img.save(&p).unwrap();
+    let out = t.path().join("o");
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_tapmap"))
+        .args(["probe", "--bank", "sobel-x", "--top", "3", "-q", "-o"])
+        .arg(&out)
+        .arg(&p)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let sheet = image::open(out.join("kernels/00-sobel-x.png"))
+        .unwrap()
+        .to_rgb8();
+    let frame = tapmap::jobs::probe::FRAME;
+    let framed = sheet.pixels().filter(|p| p.0 == frame).count();
+    // Three hits, each a 2-pixel frame around a 3×3 field enlarged to a cell.
+    assert!(framed > 3 * 4 * 2 * 40, "{framed} frame pixels");
+    // The frame encloses input pixels of the patch, not only background.
+    let patch = tapmap::jobs::probe::patch_in_context(
+        &tapmap::image_io::read_image(&p, &Default::default()).unwrap(),
+        (10, 10, 3, 3),
+    );
+    // Margin 2 on each side of a 3-sample field: 7 samples, enlarged ×27.
+    assert_eq!(patch.dimensions(), (7 * 27, 7 * 27));
+    assert_eq!(
+        patch.get_pixel(2 * 27 - 1, 3 * 27).0,
+        frame,
+        "left side of the frame"
+    );
+    assert_ne!(
+        patch.get_pixel(3 * 27, 3 * 27).0,
+        frame,
+        "inside the field: the input"
+    );
+}

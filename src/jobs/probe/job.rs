@@ -154,7 +154,12 @@ fn held_bytes(plan: &crate::pipeline::Plan, planes: usize, k: usize, images: usi
         let (sy, sx) = crate::jobs::probe::separation(*f);
         let places = (oh.div_ceil(sy) as u64).saturating_mul(ow.div_ceil(sx) as u64);
         most_hits = most_hits.max(places);
-        patch = patch.max((f.0.size as u64).saturating_mul(f.1.size as u64) * 3);
+        // The field and its margin of half its size (at least 2) on each side,
+        // enlarged to about a sheet cell.
+        let side = |r: usize| (r + 2 * (r / 2).max(2)) as u64;
+        let cell = u64::from(crate::render::sheet::CELL);
+        let s = side(f.0.size.max(f.1.size));
+        patch = patch.max((s * (cell / s).max(1)).pow(2) * 3);
         window = window.max(((2 * sy - 1) as u64).saturating_mul((2 * sx - 1) as u64));
     }
     let kept = (k as u64).min(most_hits.saturating_mul(images as u64));
@@ -224,10 +229,13 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             .map(|(r, h)| {
                 (
                     format!(
-                        "#{} {:.4}{}",
+                        "#{} {} at x {}, y {} of {}{}",
                         r + 1,
-                        h.response,
-                        if h.clipped { " clip" } else { "" }
+                        crate::render::sheet::short_number(f64::from(h.response)),
+                        h.x,
+                        h.y,
+                        h.path,
+                        if h.clipped { " (field clipped)" } else { "" }
                     ),
                     h.patch.clone(),
                 )
@@ -245,7 +253,7 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
                 )
             } else {
                 format!("{name}: top {} of {images} image(s)", cells.len())
-            };
+            } + "; the green frame marks each hit's receptive field";
             let s = sheet(&title, part);
             let stem = format!("{ch:02}-{}", safe_name(name));
             let path = kernels_dir.join(page_name(&stem, page));
@@ -266,7 +274,7 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             |kk| crate::render::taps::taps_picture(kk, &taps),
         );
         let shown = k.min(OVERVIEW_HITS);
-        overview.push((format!("{name} taps"), tap_cell));
+        overview.push((format!("row {}: {name}, taps", ch + 1), tap_cell));
         for c in 0..shown {
             match cells.get(c) {
                 Some(cell) => overview.push(cell.clone()),

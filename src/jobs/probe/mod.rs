@@ -202,11 +202,58 @@ pub fn channel_hits(
             x,
             region,
             clipped,
-            patch: region_picture(img, region, img.data.dim().0),
+            patch: patch_in_context(img, region),
         });
     }
     out
 }
+
+/// The input around a hit's receptive field: the field with a margin of half
+/// its size (at least 2 samples) on every side, enlarged by the whole factor
+/// a sheet cell would use, with a 2-pixel frame drawn just outside the field,
+/// so the patch shows what the filter saw and where it sat. Parts outside
+/// the image are hatched.
+pub fn patch_in_context(
+    img: &LoadedImage,
+    (y0, x0, h, w): (isize, isize, usize, usize),
+) -> RgbImage {
+    let m = (h.max(w) / 2).max(2);
+    let mi = m as isize;
+    let small = region_picture(
+        img,
+        (y0 - mi, x0 - mi, h + 2 * m, w + 2 * m),
+        img.data.dim().0,
+    );
+    let (sw, sh) = small.dimensions();
+    let k = (crate::render::sheet::CELL / sw.max(sh).max(1)).max(1);
+    let mut pic =
+        image::imageops::resize(&small, sw * k, sh * k, image::imageops::FilterType::Nearest);
+    let frame = image::Rgb(FRAME);
+    // The field spans [m·k, (m + size)·k) in the enlarged patch.
+    let (left, top) = (m as u32 * k, m as u32 * k);
+    let (right, bottom) = (left + w as u32 * k, top + h as u32 * k);
+    let (pw, ph) = pic.dimensions();
+    let mut put = |x: u32, y: u32| {
+        if x < pw && y < ph {
+            pic.put_pixel(x, y, frame);
+        }
+    };
+    for t in 1..=2 {
+        for x in left.saturating_sub(2)..right + 2 {
+            put(x, top.saturating_sub(t));
+            put(x, bottom + t - 1);
+        }
+        for y in top.saturating_sub(2)..bottom + 2 {
+            put(left.saturating_sub(t), y);
+            put(right + t - 1, y);
+        }
+    }
+    pic
+}
+
+/// The receptive field's frame in probe patches (a bright yellow-green that
+/// neither the grey input nor the hatching uses).
+pub const FRAME: [u8; 3] = [196, 255, 64];
 
 /// Merges hits into a channel's best `k` (the order of merging does not matter).
 pub fn merge(best: &mut Vec<Hit>, new: Vec<Hit>, k: usize) {
