@@ -61,6 +61,7 @@ fn parse_modes(s: &str) -> Result<ModeList, String> {
 pub fn run(b: BordersArgs) -> Result<i32, Error> {
     let stop = Stop::new();
     let job = BordersJob {
+        command_line: super::command_line(),
         spec: b.stage.spec()?,
         engine: b.stage.engine,
         modes: b.modes.0,

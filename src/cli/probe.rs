@@ -33,6 +33,7 @@ pub struct ProbeArgs {
 pub fn run(p: ProbeArgs) -> Result<i32, Error> {
     let stop = Stop::new();
     let job = ProbeJob {
+        command_line: super::command_line(),
         spec: p.stage.spec()?,
         engine: p.stage.engine,
         top: p.top as usize,

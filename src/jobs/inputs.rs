@@ -187,7 +187,8 @@ struct Excluder {
 }
 
 /// Whether `dir` holds a run of tapmap's: a `journal.jsonl` or a
-/// `manifest.json` that says it is tapmap's (its first bytes name the format).
+/// `manifest.json` that says it is tapmap's (its first bytes name the format:
+/// an apply run's, a merge's, a probe's or a border study's).
 pub fn is_run_folder(dir: &Path) -> bool {
     let names = |file: &str, format: &str| {
         use std::io::Read;
@@ -196,7 +197,10 @@ pub fn is_run_folder(dir: &Path) -> bool {
             .and_then(|mut f| f.read(&mut head))
             .is_ok_and(|n| String::from_utf8_lossy(&head[..n]).contains(format))
     };
-    names("journal.jsonl", "tapmap-journal") || names("manifest.json", "tapmap-manifest")
+    names("journal.jsonl", "tapmap-journal")
+        || ["tapmap-manifest", "tapmap-probe", "tapmap-borders"]
+            .iter()
+            .any(|f| names("manifest.json", f))
 }
 
 /// Whether a folder between `root` (not included: it was checked before) and

@@ -26,6 +26,7 @@ pub mod manifest;
 pub mod merge;
 pub mod probe;
 pub mod shard;
+pub mod study;
 pub mod tables;
 
 use std::fmt;

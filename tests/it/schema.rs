@@ -499,3 +499,63 @@ fn completions_load_in_bash_and_the_manual_renders() {
     }
     tapmap().args(["man", "nothing"]).assert().code(2);
 }
+
+#[test]
+fn probe_and_border_studies_write_manifests_that_follow_their_schema() {
+    let t = tempfile::TempDir::new().unwrap();
+    let inputs = t.path().join("in");
+    std::fs::create_dir_all(&inputs).unwrap();
+    std::fs::copy(
+        sample("line-a/s1-glaze/tile-0001-crack.png"),
+        inputs.join("crack.png"),
+    )
+    .unwrap();
+    std::fs::write(inputs.join("broken.png"), b"not an image").unwrap();
+    for (job, extra) in [
+        ("probe", vec!["--top", "3"]),
+        ("borders", vec!["--crop", "24"]),
+    ] {
+        let out = t.path().join(job);
+        tapmap()
+            .args([job, "--bank", "smooth", "-q", "-o", out.to_str().unwrap()])
+            .args(&extra)
+            .arg(&inputs)
+            .assert()
+            .code(1);
+        let m: Value =
+            serde_json::from_slice(&std::fs::read(out.join("manifest.json")).unwrap()).unwrap();
+        check_file(&m, "study-manifest.schema.json").unwrap_or_else(|e| panic!("{job}: {e}"));
+        assert_eq!(m["format"], format!("tapmap-{job}"));
+        let inputs = m["inputs"].as_array().unwrap();
+        assert_eq!(inputs.len(), 2);
+        assert_eq!(inputs[0]["path"], "broken.png");
+        assert_eq!(inputs[0]["status"], "failed");
+        assert_eq!(inputs[1]["status"], "ok");
+        // The digest is the file's SHA-256 (FIPS 180-4), as apply records it.
+        let bytes = std::fs::read(sample("line-a/s1-glaze/tile-0001-crack.png")).unwrap();
+        assert_eq!(inputs[1]["sha256"], tapmap::digest::sha256_hex(&bytes));
+        assert!(m["recipe"]["stages"][0]["bank_file"]
+            .as_str()
+            .unwrap()
+            .contains("[[kernel]]"));
+        for f in m["files"].as_array().unwrap() {
+            let p = out.join(f["path"].as_str().unwrap());
+            assert_eq!(
+                std::fs::metadata(&p).unwrap().len(),
+                f["bytes"].as_u64().unwrap()
+            );
+        }
+        // A study's folder is a run folder: never read as input.
+        tapmap()
+            .args([
+                "apply",
+                "--bank",
+                "edges",
+                "-o",
+                t.path().join("x").to_str().unwrap(),
+            ])
+            .arg(out.join("manifest.json").parent().unwrap())
+            .assert()
+            .code(2);
+    }
+}

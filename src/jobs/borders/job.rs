@@ -12,7 +12,6 @@ use std::sync::Mutex;
 use crate::border::PadMode;
 use crate::engine::Engine;
 use crate::error::Error;
-use crate::image_io::read_image;
 use crate::jobs::borders::output as bo;
 use crate::jobs::borders::study;
 use crate::jobs::inputs::{expand_inputs, InputItem};
@@ -59,6 +58,8 @@ pub struct BordersJob {
     pub jobs: usize,
     /// Asked to stop: finish the image in hand, write the tables, return.
     pub stop: Stop,
+    /// The command line, for the manifest.
+    pub command_line: Vec<String>,
 }
 
 /// What a study did.
@@ -89,8 +90,12 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
     // index, so the tables come out in input order whatever finishes first.
     let results: Mutex<Vec<Option<Result<ImageResult, Error>>>> =
         Mutex::new((0..items.len()).map(|_| None).collect());
+    let record = crate::jobs::study::StudyRecord::start("tapmap-borders");
+    let digests: Mutex<Vec<Option<String>>> = Mutex::new(vec![None; items.len()]);
     for_each_parallel(&items, job.jobs, &job.stop, |i, item| {
-        let r = pool.install(|| one_image(job, item));
+        let mut sha = None;
+        let r = pool.install(|| one_image(job, item, &mut sha));
+        digests.lock().unwrap_or_else(|p| p.into_inner())[i] = sha;
         match &r {
             Ok(done) => obs.report(&done.text),
             Err(e) => obs.input_failed(e),
@@ -102,15 +107,21 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
     let (mut rows, mut bands, mut summary_rows) = (Vec::new(), Vec::new(), Vec::new());
     let mut all_curves: Vec<(PadMode, Vec<f64>, usize)> = Vec::new();
     let (mut ok, mut failed) = (0, 0);
-    for r in results
+    let mut failures = Vec::new();
+    for (i, r) in results
         .into_inner()
         .unwrap_or_else(|p| p.into_inner())
         .into_iter()
-        .flatten()
+        .enumerate()
     {
-        let Ok(done) = r else {
-            failed += 1;
-            continue;
+        let done = match r {
+            Some(Ok(done)) => done,
+            Some(Err(e)) => {
+                failed += 1;
+                failures.push((i, e));
+                continue;
+            }
+            None => continue,
         };
         ok += 1;
         rows.extend(done.rows);
@@ -151,6 +162,25 @@ pub fn run_borders(job: &BordersJob, obs: &dyn Observer) -> Result<BordersSummar
             &curves,
         )?;
     }
+    let digests = digests.into_inner().unwrap_or_else(|p| p.into_inner());
+    let inputs = crate::jobs::study::outcomes(&items, digests, &failures);
+    let tables: Vec<String> = ["borders.csv", "bands.csv", "summary.csv", "plot.png"]
+        .map(String::from)
+        .to_vec();
+    record.write(
+        out,
+        &job.spec,
+        job.engine,
+        serde_json::json!({
+            "modes": job.modes.iter().map(|m| m.name()).collect::<Vec<_>>(),
+            "tolerance": job.tolerance,
+            "crop": job.crop,
+        }),
+        &job.command_line,
+        job.jobs,
+        &tables,
+        inputs,
+    )?;
     Ok(BordersSummary {
         studied: ok,
         failed,
@@ -167,13 +197,16 @@ struct ImageResult {
 }
 
 /// Studies one image and writes its views and plot.
-fn one_image(job: &BordersJob, item: &InputItem) -> Result<ImageResult, Error> {
+fn one_image(
+    job: &BordersJob,
+    item: &InputItem,
+    sha: &mut Option<String>,
+) -> Result<ImageResult, Error> {
     let out = &job.out_dir;
     let path = item.rel_string();
-    if let Some(p) = &item.problem {
-        return Err(Error::decode(&item.source, p.clone()));
-    }
-    let img = read_image(&item.source, &job.spec.input)?;
+    let (digest, img) = crate::jobs::study::read_with_digest(item, &job.spec);
+    *sha = digest;
+    let img = img?;
     let recipe = job.spec.recipe_for(&img.channel_names)?;
     let names = recipe.channel_names(img.data.dim().0);
     let (_, h, w) = img.data.dim();

@@ -9,7 +9,6 @@ use rayon::prelude::*;
 
 use crate::engine::Engine;
 use crate::error::Error;
-use crate::image_io::read_image;
 use crate::jobs::inputs::expand_inputs;
 use crate::jobs::probe::{channel_hits, merge, Hit};
 use crate::jobs::tables::write_csv;
@@ -41,6 +40,8 @@ pub struct ProbeJob {
     pub jobs: usize,
     /// Asked to stop: finish the images in flight, write what was found, return.
     pub stop: Stop,
+    /// The command line, for the manifest.
+    pub command_line: Vec<String>,
 }
 
 /// What a probe did.
@@ -69,13 +70,14 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
     let best: Mutex<Vec<(String, Vec<Hit>)>> = Mutex::new(Vec::new());
     let plans = PlanCache::default();
     let failures: Mutex<Vec<(usize, Error)>> = Mutex::new(Vec::new());
+    let record = crate::jobs::study::StudyRecord::start("tapmap-probe");
+    let digests: Mutex<Vec<Option<String>>> = Mutex::new(vec![None; items.len()]);
     obs.begin(items.len());
     for_each_parallel(&items, job.jobs, &job.stop, |i, item| {
         let result = pool.install(|| -> Result<(), Error> {
-            if let Some(m) = &item.problem {
-                return Err(Error::decode(&item.source, m.clone()));
-            }
-            let img = read_image(&item.source, &job.spec.input)?;
+            let (sha, img) = crate::jobs::study::read_with_digest(item, &job.spec);
+            digests.lock().unwrap_or_else(|p| p.into_inner())[i] = sha;
+            let img = img?;
             let plan = plans.get(&job.spec, &img.channel_names, img.data.dim(), job.engine)?;
             let names = plan.channel_names();
             let (_, h, w) = img.data.dim();
@@ -128,12 +130,22 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
         obs.advance();
     });
     obs.end();
-    let failed = failures
-        .into_inner()
-        .unwrap_or_else(|p| p.into_inner())
-        .len();
+    let failures = failures.into_inner().unwrap_or_else(|p| p.into_inner());
+    let failed = failures.len();
     let best = best.into_inner().unwrap_or_else(|p| p.into_inner());
-    write_results(job, &best, items.len())?;
+    let tables = write_results(job, &best, items.len())?;
+    let digests = digests.into_inner().unwrap_or_else(|p| p.into_inner());
+    let inputs = crate::jobs::study::outcomes(&items, digests, &failures);
+    record.write(
+        &job.out_dir,
+        &job.spec,
+        job.engine,
+        serde_json::json!({"top": job.top}),
+        &job.command_line,
+        job.jobs,
+        &tables,
+        inputs,
+    )?;
     Ok(ProbeSummary {
         probed: items.len() - failed,
         failed,
@@ -194,7 +206,12 @@ fn page_name(stem: &str, page: usize) -> String {
 }
 
 /// `probe.csv`, the per-kernel sheets and the overview.
-fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> Result<(), Error> {
+fn write_results(
+    job: &ProbeJob,
+    best: &[(String, Vec<Hit>)],
+    images: usize,
+) -> Result<Vec<String>, Error> {
+    let mut written = Vec::new();
     let k = job.top;
     let out = &job.out_dir;
     let mut rows = Vec::new();
@@ -257,6 +274,7 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             let s = sheet(&title, part);
             let stem = format!("{ch:02}-{}", safe_name(name));
             let path = kernels_dir.join(page_name(&stem, page));
+            written.push(format!("kernels/{}", page_name(&stem, page)));
             crate::render::write_png(
                 &path,
                 s.as_raw(),
@@ -300,6 +318,7 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
             title += &format!(", page {} of {pages}", page + 1);
         }
         let s = sheet_with_columns(&title, part, columns);
+        written.push(page_name("overview", page));
         crate::render::write_png(
             &out.join(page_name("overview", page)),
             s.as_raw(),
@@ -309,5 +328,6 @@ fn write_results(job: &ProbeJob, best: &[(String, Vec<Hit>)], images: usize) -> 
         )?;
     }
     write_csv(&out.join("probe.csv"), &PROBE_COLUMNS, rows)?;
-    Ok(())
+    written.push("probe.csv".to_string());
+    Ok(written)
 }
