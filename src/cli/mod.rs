@@ -268,7 +268,7 @@ impl Observer for Terminal {
         self.bar.inc(1);
     }
     fn input_failed(&self, error: &Error) {
-        self.bar.suspend(|| tell!("tapmap: {error}"));
+        self.bar.suspend(|| tell!("tapmap: error: {error}"));
     }
     fn report(&self, text: &str) {
         if !self.quiet {

@@ -289,3 +289,46 @@ fn borders_command_writes_csvs_views_and_plots() {
         .code(2)
         .stderr(predicates::str::contains("at least two pad modes"));
 }
+
+#[test]
+fn difference_views_say_what_they_show() {
+    let t = tempfile::TempDir::new().unwrap();
+    let out = t.path().join("o");
+    let input = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("sample_data/line-a/s1-glaze/tile-0001-crack.png");
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_tapmap"))
+        .args(["borders", "--bank", "sobel-x", "-q", "-o"])
+        .arg(&out)
+        .arg(&input)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let v = image::open(out.join("views/tile-0001-crack/00-sobel-x/zero.png"))
+        .unwrap()
+        .to_rgb8();
+    // The map (256×192) with two caption lines under it.
+    assert!(
+        v.height() >= 192 + 2 * tapmap::render::text::LINE,
+        "{:?}",
+        v.dimensions()
+    );
+    let caption = (192..v.height()).flat_map(|y| (0..v.width()).map(move |x| (x, y)));
+    let (mut ink, mut amber, mut cyan) = (0, 0, 0);
+    for (x, y) in caption {
+        let p = v.get_pixel(x, y).0;
+        if p[0] > 150 && p[0] == p[1] && p[1] == p[2] {
+            ink += 1;
+        }
+        if p[0] > 150 && p[2] < 100 {
+            amber += 1;
+        }
+        if p[2] > 150 && p[0] < 100 {
+            cyan += 1;
+        }
+    }
+    assert!(ink > 200, "{ink} text pixels");
+    assert!(
+        amber >= 100 && cyan >= 100,
+        "swatches: amber {amber}, cyan {cyan}"
+    );
+}

@@ -256,7 +256,7 @@ fn one_image(
                 number(m.max_dev),
                 optional_number(m.crop_mean),
                 optional_number(m.crop_max),
-                (Some(i) == best).to_string(),
+                best.contains(&i).to_string(),
             ]
         })
         .collect();

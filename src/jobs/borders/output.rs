@@ -95,11 +95,17 @@ pub fn summarise(st: &ImageStudy) -> Vec<ModeSummary> {
         .collect()
 }
 
-/// Index of the best mode: lowest crop error when there is a crop study,
-/// otherwise the lowest deviation from the median (closest to the consensus).
-pub fn best(summary: &[ModeSummary]) -> Option<usize> {
+/// The best modes: lowest crop error when there is a crop study, else lowest
+/// deviation from the median. Every mode that ties for lowest is returned (in
+/// the order given), so a tie is shown, never hidden.
+pub fn best(summary: &[ModeSummary]) -> Vec<usize> {
     let key = |s: &ModeSummary| s.crop_mean.unwrap_or(s.mean_dev);
-    (0..summary.len()).min_by(|a, b| key(&summary[*a]).total_cmp(&key(&summary[*b])))
+    let Some(low) = summary.iter().map(key).min_by(f64::total_cmp) else {
+        return Vec::new();
+    };
+    (0..summary.len())
+        .filter(|&i| key(&summary[i]).total_cmp(&low).is_eq())
+        .collect()
 }
 
 /// The stdout table for one image.
@@ -140,12 +146,15 @@ pub fn summary_text(path: &str, st: &ImageStudy, summary: &[ModeSummary]) -> Str
         if let (Some(a), Some(x)) = (m.crop_mean, m.crop_max) {
             let _ = write!(s, " {a:>12.5e} {x:>12.5e}");
         }
-        if Some(i) == b {
+        if b.contains(&i) {
             s.push_str(if crop {
                 "  <- closest to the real surroundings"
             } else {
                 "  <- closest to the consensus"
             });
+            if b.len() > 1 {
+                s.push_str(" (tied)");
+            }
         }
         s.push('\n');
     }
@@ -295,11 +304,59 @@ pub fn write_difference_views(
             }
             outline(&mut img, ch.predicted, PREDICTED);
             outline(&mut img, ch.band, MEASURED);
+            let img = with_caption(img, k, ch, modes[i], hi[k]);
             let sub = dir.join(format!("{k:02}-{}", crate::jobs::safe_name(&ch.name)));
             let p = sub.join(format!("{}.png", modes[i].name()));
             write_view(&p, &ViewImage::Indexed(img), &table, ViewPng::Fast)
         })?;
     Ok(jobs.len())
+}
+
+/// A difference view with two lines under it saying what it shows: the
+/// channel, the mode and the grey scale's range, and which outline is which.
+/// Drawn in the view's own palette (text in its greys, swatches in the
+/// outline colours).
+fn with_caption(map: GrayImage, k: usize, ch: &ChannelStudy, mode: PadMode, hi: f32) -> GrayImage {
+    use crate::render::text::{draw_text, text_width, LINE};
+    let first = format!(
+        "channel {k:02} {}, mode {}: |mode - median of modes|, black 0 to white {}",
+        ch.name,
+        mode.name(),
+        crate::render::sheet::short_number(f64::from(hi))
+    );
+    let measured = format!(
+        "measured band {} px",
+        ch.band.iter().max().copied().unwrap_or(0)
+    );
+    let predicted = format!(
+        "predicted band {} px (receptive field)",
+        ch.predicted.iter().max().copied().unwrap_or(0)
+    );
+    let width = map
+        .width()
+        .max(6 + text_width(&first))
+        .max(40 + text_width(&measured) + text_width(&predicted));
+    let height = map.height() + 6 + 2 * LINE;
+    let mut text = RgbImage::new(width, height);
+    let ink = Rgb([255, 255, 255]);
+    let y0 = map.height() + 3;
+    draw_text(&mut text, 4, y0, &first, ink);
+    draw_text(&mut text, 18, y0 + LINE, &measured, ink);
+    let x2 = 18 + text_width(&measured) + 22;
+    draw_text(&mut text, x2, y0 + LINE, &predicted, ink);
+    let mut out = GrayImage::from_fn(width, height, |x, y| {
+        let v = u32::from(text.get_pixel(x, y).0[0]);
+        Luma([((v * GREYS as u32 + 127) / 255) as u8])
+    });
+    image::imageops::replace(&mut out, &map, 0, 0);
+    for (x, index) in [(4, MEASURED), (x2 - 14, PREDICTED)] {
+        for dy in 3..13 {
+            for dx in 0..10 {
+                out.put_pixel(x + dx, y0 + LINE + dy - 2, Luma([index]));
+            }
+        }
+    }
+    out
 }
 
 /// Mean error by distance for one image, averaged over channels: the crop study's
@@ -551,4 +608,40 @@ pub fn write_plot(
     );
     draw_text(&mut img, 8, 10 + crate::render::text::LINE, &y_label, ink);
     write_png(path, img.as_raw(), W, H, image::ExtendedColorType::Rgb8)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn row(mode: PadMode, mean_dev: f64, crop: Option<f64>) -> ModeSummary {
+        ModeSummary {
+            mode,
+            band: 1,
+            mean_dev,
+            max_dev: mean_dev,
+            crop_mean: crop,
+            crop_max: crop,
+        }
+    }
+
+    #[test]
+    fn ties_for_best_are_all_marked() {
+        let rows = [
+            row(PadMode::Zero, 0.3, None),
+            row(PadMode::Reflect, 0.1, None),
+            row(PadMode::Symmetric, 0.1, None),
+        ];
+        assert_eq!(best(&rows), vec![1, 2]);
+        let crop = [
+            row(PadMode::Zero, 0.0, Some(0.5)),
+            row(PadMode::Wrap, 0.2, Some(0.25)),
+        ];
+        assert_eq!(
+            best(&crop),
+            vec![1],
+            "the crop error decides when there is one"
+        );
+        assert!(best(&[]).is_empty());
+    }
 }
