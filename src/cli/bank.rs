@@ -78,6 +78,9 @@ pub enum BankCommand {
         /// PNG to write.
         #[arg(long, short = 'o', value_name = "FILE")]
         out: PathBuf,
+        /// Write each tap's value in its square (kernels up to 9×9 taps, one plane).
+        #[arg(long)]
+        values: bool,
     },
     /// Write a bank file from built-in families.
     #[command(after_help = "Examples:\n  \
@@ -166,7 +169,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             );
             Ok(EXIT_OK)
         }
-        BankCommand::Draw { bank, out } => {
+        BankCommand::Draw { bank, out, values } => {
             let is_png = out
                 .extension()
                 .and_then(|e| e.to_str())
@@ -178,7 +181,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
                 )));
             }
             let b = resolve_bank(&bank)?;
-            let img = tapmap::render::taps::draw_bank(&b);
+            let img = tapmap::render::taps::draw_bank_with(&b, values);
             tapmap::render::write_png(
                 &out,
                 img.as_raw(),

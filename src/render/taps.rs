@@ -65,8 +65,73 @@ pub fn taps_picture(k: &Kernel, table: &[[u8; 3]]) -> RgbImage {
     })
 }
 
+/// A kernel's taps enlarged to about a sheet cell, each tap a square with a
+/// one-pixel grid line between neighbours; with `values`, each tap's value
+/// written in its square when the squares are wide enough (kernels of up to
+/// 9 × 9 taps, one plane), dark on light taps and light on dark ones.
+pub fn taps_cell(k: &Kernel, table: &[[u8; 3]], values: bool) -> RgbImage {
+    use crate::render::text::{text_width, LINE};
+    let small = taps_picture(k, table);
+    let (w, h) = small.dimensions();
+    let s = (crate::render::sheet::CELL / w.max(h).max(1)).max(1);
+    if s < 3 {
+        return small;
+    }
+    let grid = Rgb([30, 33, 36]);
+    let mut out = RgbImage::from_fn(w * s + 1, h * s + 1, |x, y| {
+        if x % s == 0 || y % s == 0 {
+            grid
+        } else {
+            *small.get_pixel((x / s).min(w - 1), (y / s).min(h - 1))
+        }
+    });
+    if values && k.channels() == 1 && k.rows <= 9 && k.cols <= 9 {
+        for ty in 0..k.rows {
+            for tx in 0..k.cols {
+                let v = k.planes[0][ty * k.cols + tx] * k.scale;
+                let text = short_signed(v);
+                let tw = text_width(&text);
+                if tw + 4 > s || LINE + 2 > s {
+                    continue;
+                }
+                let c = small.get_pixel(tx as u32, ty as u32).0;
+                let light =
+                    0.2126 * f64::from(c[0]) + 0.7152 * f64::from(c[1]) + 0.0722 * f64::from(c[2]);
+                let ink = if light > 140.0 {
+                    Rgb([20, 22, 26])
+                } else {
+                    Rgb([240, 240, 236])
+                };
+                let x = tx as u32 * s + (s - tw) / 2;
+                let y = ty as u32 * s + (s - LINE) / 2;
+                draw_text(&mut out, x, y, &text, ink);
+            }
+        }
+    }
+    out
+}
+
+/// A tap value in at most about four characters.
+fn short_signed(v: f64) -> String {
+    if v == v.round() && v.abs() < 1000.0 {
+        format!("{}", v as i64)
+    } else if v.abs() >= 0.01 && v.abs() < 100.0 {
+        let t = format!("{v:.2}");
+        let t = t.trim_end_matches('0').trim_end_matches('.').to_string();
+        t.replace("0.", ".")
+    } else {
+        format!("{v:.0e}")
+    }
+}
+
 /// A sheet of every kernel of a bank, with a legend of the scale below.
 pub fn draw_bank(bank: &Bank) -> RgbImage {
+    draw_bank_with(bank, false)
+}
+
+/// [`draw_bank`], with each small kernel's tap values in its squares when
+/// `values`.
+pub fn draw_bank_with(bank: &Bank, values: bool) -> RgbImage {
     let table = colormap::table();
     let cells: Vec<(String, RgbImage)> = bank
         .kernels
@@ -74,7 +139,7 @@ pub fn draw_bank(bank: &Bank) -> RgbImage {
         .map(|k| {
             (
                 format!("{} ±{}", k.name, short(extreme(k))),
-                taps_picture(k, &table),
+                taps_cell(k, &table, values),
             )
         })
         .collect();

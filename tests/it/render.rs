@@ -271,3 +271,36 @@ fn probe_patches_show_their_field_framed_in_context() {
         "inside the field: the input"
     );
 }
+
+#[test]
+fn bank_pictures_grid_their_taps_and_can_write_the_values() {
+    let bank = tapmap::kernel::builtin::resolve_bank("sobel-x").unwrap();
+    let tab = tapmap::render::colormap::table();
+    let plain = tapmap::render::taps::taps_cell(&bank.kernels[0], &tab, false);
+    let valued = tapmap::render::taps::taps_cell(&bank.kernels[0], &tab, true);
+    // 3×3 taps at 64 px each with a grid line between them: 3·64 + 1.
+    assert_eq!(plain.dimensions(), (193, 193));
+    let grid = [30, 33, 36];
+    assert!(
+        (0..193).all(|y| plain.get_pixel(64, y).0 == grid),
+        "a grid column between taps"
+    );
+    // The middle of a tap square holds the tap's colour: sobel-x's top-left is -1
+    // of a ±2 scale (Szeliski 2010, §3.2.1).
+    assert_eq!(
+        plain.get_pixel(10, 10).0,
+        tab[(127.5 - 127.5 / 2.0_f64).round() as usize]
+    );
+    // With values, text sits in the squares: the pictures differ only there.
+    let differ = plain
+        .pixels()
+        .zip(valued.pixels())
+        .filter(|(a, b)| a != b)
+        .count();
+    assert!(differ > 9 * 10, "{differ} pixels of text");
+    assert_eq!(
+        plain.get_pixel(64, 100),
+        valued.get_pixel(64, 100),
+        "the grid stays"
+    );
+}
