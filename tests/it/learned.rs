@@ -495,12 +495,13 @@ fn drawn_taps_show_one_square_per_tap_in_the_right_colour() {
         kernels: vec![k.clone()],
     };
     let sheet = tapmap::render::taps::draw_bank(&bank);
-    // Enlarged by nearest neighbour: one square of 64×64 (192 / 3) pixels.
+    // Enlarged by nearest neighbour: one square of 64×64 (192 / 3) pixels, of
+    // which a one-pixel grid line takes a row and a column.
     let n = sheet.pixels().filter(|p| p.0 == POSITIVE).count();
     assert_eq!(
         n,
-        64 * 64 + 12,
-        "the tap's square plus the legend's last column"
+        63 * 63 + 12,
+        "the tap's square inside the grid plus the legend's last column"
     );
     k.planes = vec![
         vec![0.0, 0.0, 2.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0],
