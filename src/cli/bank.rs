@@ -182,13 +182,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             }
             let b = resolve_bank(&bank)?;
             let img = tapmap::render::taps::draw_bank_with(&b, values);
-            tapmap::render::write_png(
-                &out,
-                img.as_raw(),
-                img.width(),
-                img.height(),
-                image::ExtendedColorType::Rgb8,
-            )?;
+            tapmap::render::write_rgb(&out, &img)?;
             say!("wrote {} ({} kernels)\n", out.display(), b.kernels.len());
             Ok(EXIT_OK)
         }

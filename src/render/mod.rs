@@ -14,6 +14,17 @@ use image::{ExtendedColorType, ImageEncoder};
 use crate::error::Error;
 use crate::image_io::atomic::write_atomic;
 
+/// Writes an 8-bit RGB picture as PNG, atomically (see [`write_png`]).
+pub fn write_rgb(path: &Path, img: &image::RgbImage) -> Result<(), Error> {
+    write_png(
+        path,
+        img.as_raw(),
+        img.width(),
+        img.height(),
+        ExtendedColorType::Rgb8,
+    )
+}
+
 /// Writes PNG bytes atomically with fast compression (zlib level 1 was measured
 /// several times faster than the default with files no larger; the PNG encoder
 /// otherwise dominates a batch run).

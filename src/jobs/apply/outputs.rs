@@ -17,7 +17,7 @@ use crate::jobs::tables::{Finished, ImageRow, StatsRow};
 use crate::jobs::{safe_name, Save, ViewOptions};
 use crate::limits::bytes_text;
 use crate::pipeline::{Plan, PlanCache};
-use crate::render::{sheet, view, write_png, write_view};
+use crate::render::{sheet, view, write_rgb, write_view};
 use crate::stage::RecipeSpec;
 use crate::stats::map_stats;
 
@@ -288,13 +288,7 @@ fn write_outputs(
                     };
                     let s = sheet::sheet_of(&item.rel_string(), &[cell], 1);
                     let p = out.join("keys").join(&stem).join(file_of(k, "png"));
-                    write_png(
-                        &p,
-                        s.as_raw(),
-                        s.width(),
-                        s.height(),
-                        image::ExtendedColorType::Rgb8,
-                    )?;
+                    write_rgb(&p, &s)?;
                     o.key = Some(p);
                 }
                 if cx.save.sheets {
@@ -394,13 +388,7 @@ fn write_outputs(
     if cx.save.sheets {
         let s = sheet::sheet_of(&item.rel_string(), &cells, 0);
         let p = item.output_file(&out.join("sheets"), "png");
-        write_png(
-            &p,
-            s.as_raw(),
-            s.width(),
-            s.height(),
-            image::ExtendedColorType::Rgb8,
-        )?;
+        write_rgb(&p, &s)?;
         written.push(p.clone());
         record(&p, entry)?;
     }

@@ -275,13 +275,7 @@ fn write_results(
             let stem = format!("{ch:02}-{}", safe_name(name));
             let path = kernels_dir.join(page_name(&stem, page));
             written.push(format!("kernels/{}", page_name(&stem, page)));
-            crate::render::write_png(
-                &path,
-                s.as_raw(),
-                s.width(),
-                s.height(),
-                image::ExtendedColorType::Rgb8,
-            )?;
+            crate::render::write_rgb(&path, &s)?;
         }
         let kernel = last_bank.as_ref().and_then(|b| {
             let base = name.split('@').next().unwrap_or(name);
@@ -319,13 +313,7 @@ fn write_results(
         }
         let s = sheet_with_columns(&title, part, columns);
         written.push(page_name("overview", page));
-        crate::render::write_png(
-            &out.join(page_name("overview", page)),
-            s.as_raw(),
-            s.width(),
-            s.height(),
-            image::ExtendedColorType::Rgb8,
-        )?;
+        crate::render::write_rgb(&out.join(page_name("overview", page)), &s)?;
     }
     write_csv(&out.join("probe.csv"), &PROBE_COLUMNS, rows)?;
     written.push("probe.csv".to_string());
