@@ -235,3 +235,18 @@ pub fn without_times(name: &std::path::Path, bytes: &[u8]) -> Vec<u8> {
         _ => bytes.to_vec(),
     }
 }
+
+/// The tapmap binary as a command, with the job schedulers' variables removed
+/// (a test run inside a Slurm or Kubernetes job must not pick up its part).
+pub fn tapmap_command() -> std::process::Command {
+    let mut c = std::process::Command::new(env!("CARGO_BIN_EXE_tapmap"));
+    for k in [
+        "SLURM_ARRAY_TASK_ID",
+        "SLURM_ARRAY_TASK_MIN",
+        "SLURM_ARRAY_TASK_COUNT",
+        "JOB_COMPLETION_INDEX",
+    ] {
+        c.env_remove(k);
+    }
+    c
+}

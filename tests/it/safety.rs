@@ -19,17 +19,7 @@ where
     I: IntoIterator<Item = S>,
     S: AsRef<OsStr>,
 {
-    let mut c = Command::new(BIN);
-    c.args(args);
-    for k in [
-        "SLURM_ARRAY_TASK_ID",
-        "SLURM_ARRAY_TASK_MIN",
-        "SLURM_ARRAY_TASK_COUNT",
-        "JOB_COMPLETION_INDEX",
-    ] {
-        c.env_remove(k);
-    }
-    c.output().unwrap()
+    crate::common::tapmap_command().args(args).output().unwrap()
 }
 
 fn stderr(o: &Output) -> String {

@@ -4,12 +4,9 @@
 
 use std::collections::BTreeMap;
 use std::path::Path;
-use std::process::Command;
 
 use image::{ImageBuffer, Luma};
 use tempfile::TempDir;
-
-const BIN: &str = env!("CARGO_BIN_EXE_tapmap");
 
 fn grey(p: &Path, w: u32, h: u32, seed: u32) {
     std::fs::create_dir_all(p.parent().unwrap()).unwrap();
@@ -35,16 +32,8 @@ fn corpus(dir: &Path, n: u32) {
 }
 
 fn run(args: &[&str], env: &[(&str, &str)]) -> std::process::Output {
-    let mut c = Command::new(BIN);
+    let mut c = crate::common::tapmap_command();
     c.args(args);
-    for k in [
-        "SLURM_ARRAY_TASK_ID",
-        "SLURM_ARRAY_TASK_MIN",
-        "SLURM_ARRAY_TASK_COUNT",
-        "JOB_COMPLETION_INDEX",
-    ] {
-        c.env_remove(k);
-    }
     for (k, v) in env {
         c.env(k, v);
     }
