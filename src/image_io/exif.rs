@@ -44,7 +44,7 @@ pub(crate) fn read_exif(raw: &[u8], info: &mut ImageMeta) -> Result<(), String> 
 }
 
 /// An EXIF date and time, `YYYY:MM:DD HH:MM:SS` (EXIF 2.32, JEITA CP-3451E,
-/// §4.6.5 DateTimeOriginal), in ISO 8601 extended form, `YYYY-MM-DDTHH:MM:SS`,
+/// §4.6.5 DateTimeOriginal; section from memory), in ISO 8601 extended form, `YYYY-MM-DDTHH:MM:SS`,
 /// with the offset `±HH:MM` of OffsetTimeOriginal when given (local time
 /// without one). Text of another shape, or with digits out of range, is kept
 /// as written.
@@ -98,7 +98,8 @@ mod tests {
 
     #[test]
     fn exif_times_become_iso_8601() {
-        // EXIF's own layout (EXIF 2.32 §4.6.5) and ISO 8601-1:2019 §5.4.2 extended form.
+        // EXIF's own layout (EXIF 2.32 §4.6.5) and ISO 8601-1:2019 §5.4.2 extended
+        // form (section numbers from memory).
         assert_eq!(iso_8601("2026:11:30 22:14:05", None), "2026-11-30T22:14:05");
         assert_eq!(
             iso_8601("2026:11:30 22:14:05", Some("+09:00")),
