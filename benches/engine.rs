@@ -102,6 +102,7 @@ fn bank_stage(
             description: None,
             kernels,
             normalize: None,
+            pad: None,
         },
         options: ConvOptions {
             pad: PadMode::Zero,

@@ -14,7 +14,7 @@ use tapmap::image_io::{ColorMode, ReadOptions};
 use tapmap::kernel::builtin::resolve_bank;
 use tapmap::kernel::Op;
 use tapmap::stage::recipefile::read_recipe;
-use tapmap::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, RecipeSpec};
+use tapmap::stage::{Activation, PadReason, Pool, PoolKind, PoolWindow, Recipe, RecipeSpec};
 
 #[derive(Args, Clone)]
 pub struct StageArgs {
@@ -34,7 +34,8 @@ pub struct StageArgs {
     /// convolve (rotate taps 180°) or correlate (taps as written); default: as the bank declares.
     #[arg(long, value_name = "OP")]
     pub op: Option<Op>,
-    /// What stands outside the image: zero, replicate, reflect, symmetric, wrap [default: zero].
+    /// What stands outside the image: zero, replicate, reflect, symmetric, wrap [default: what
+    /// the bank file names; zero for trained weights; symmetric for built-in and hand-written banks].
     #[arg(long, value_name = "MODE")]
     pub pad: Option<PadMode>,
     /// How much padding: valid (none), same (output = ceil(input/stride)), full (k−1 each side) [default: same].
@@ -219,9 +220,15 @@ impl StageArgs {
                     }),
                     None => None,
                 };
+                let (mode, why) = tapmap::stage::default_pad(&bank);
+                let mut recipe = Recipe::single(bank, self.act, pool);
+                if let Some(c) = recipe.first_conv_mut() {
+                    c.options.pad = mode;
+                }
                 RecipeSpec {
                     input: ReadOptions::default(),
-                    recipe: Recipe::single(bank, self.act, pool),
+                    recipe,
+                    pads: vec![why],
                 }
             }
         };
@@ -230,11 +237,24 @@ impl StageArgs {
                 if self.recipe.is_some() {
                     if let Some(b) = &self.bank {
                         conv.bank = resolve_bank(b)?;
+                        // A default pad follows the bank that replaced the recipe's.
+                        if spec.pads.first() != Some(&PadReason::Recipe) {
+                            let (mode, why) = tapmap::stage::default_pad(&conv.bank);
+                            conv.options.pad = mode;
+                            if let Some(p) = spec.pads.first_mut() {
+                                *p = why;
+                            }
+                        }
                     }
                 }
                 let o = &mut conv.options;
                 o.op = self.op.or(o.op);
-                o.pad = self.pad.unwrap_or(o.pad);
+                if let Some(p) = self.pad {
+                    o.pad = p;
+                    if let Some(r) = spec.pads.first_mut() {
+                        *r = PadReason::Flag;
+                    }
+                }
                 o.extent = self
                     .pad_width
                     .map(Extent::Explicit)

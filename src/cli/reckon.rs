@@ -31,16 +31,40 @@ pub fn run(p: ReckonArgs) -> Result<i32, Error> {
     let (w, h) = p.size;
     let channels = spec.input.color.bank_channels();
     let plan = Plan::new(&spec.recipe, (channels, h, w), p.stage.engine)?;
+    // Each conv stage's pad mode and why it has it.
+    let pads: Vec<(usize, String, String)> = spec
+        .recipe
+        .stages
+        .iter()
+        .enumerate()
+        .filter_map(|(i, st)| match st {
+            tapmap::stage::Stage::Conv(c) => Some((i + 1, c.options.pad.name().to_string())),
+            _ => None,
+        })
+        .enumerate()
+        .map(|(k, (stage, mode))| {
+            let why = spec
+                .pads
+                .get(k)
+                .map_or_else(String::new, ToString::to_string);
+            (stage, mode, why)
+        })
+        .collect();
     if p.json {
-        say!(
-            "{:#}\n",
-            tapmap::pipeline::sizes_json((channels, h, w), plan.sizes())
-        );
+        let mut v = tapmap::pipeline::sizes_json((channels, h, w), plan.sizes());
+        v["pads"] = serde_json::json!(pads
+            .iter()
+            .map(|(stage, mode, why)| serde_json::json!({"stage": stage, "mode": mode, "why": why}))
+            .collect::<Vec<_>>());
+        say!("{v:#}\n");
     } else {
         say!(
             "{}",
             tapmap::pipeline::sizes_table((channels, h, w), plan.sizes())
         );
+        for (stage, mode, why) in &pads {
+            say!("pad of stage {stage}: {mode} ({why})\n");
+        }
     }
     Ok(EXIT_OK)
 }

@@ -129,6 +129,10 @@ pub enum StageRecord {
         op: String,
         /// Pad mode.
         pad: String,
+        /// Why that pad mode (a recipe file's or the command line's rule; see
+        /// `stage::pads`); absent when the caller gave it in code.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        pad_reason: Option<String>,
         /// `valid`, `same`, `full`, or explicit padding.
         extent: ExtentRecord,
         /// Stride (rows, cols).
@@ -328,12 +332,15 @@ pub struct InputRecord {
 
 /// The record of a recipe: input handling and stages, banks whole.
 pub fn recipe_record(spec: &RecipeSpec) -> RecipeRecord {
+    let mut convs = 0;
     let stages = spec
         .recipe
         .stages
         .iter()
         .map(|s| match s {
             Stage::Conv(c) => {
+                let pad_reason = spec.pads.get(convs).map(ToString::to_string);
+                convs += 1;
                 let o = &c.options;
                 let extent = match o.extent {
                     Extent::Explicit(p) => ExtentRecord::Explicit {
@@ -351,6 +358,7 @@ pub fn recipe_record(spec: &RecipeSpec) -> RecipeRecord {
                     kernels: c.bank.kernels.iter().map(|k| k.name.clone()).collect(),
                     op: c.op().name().into(),
                     pad: o.pad.name().into(),
+                    pad_reason,
                     extent,
                     stride: [o.stride.0, o.stride.1],
                     dilation: [o.dilation.0, o.dilation.1],

@@ -4,6 +4,8 @@
 //! name = "line-a-edges"          # the bank's name
 //! op = "correlate"               # how the taps are meant: correlate | convolve
 //! description = "free text"      # optional
+//! pad = "symmetric"              # optional: the pad mode where no recipe or flag names
+//!                                # one (`bank import` writes "zero"; see stage::pads)
 //! normalize = { mean = [0.485, 0.456, 0.406], std = [0.229, 0.224, 0.225] }
 //!                                # optional: input normalisation per channel, applied
 //!                                # before the conv stage (learned banks)
@@ -43,6 +45,7 @@ struct FileIn {
     name: Option<String>,
     op: Option<Op>,
     description: Option<String>,
+    pad: Option<crate::border::PadMode>,
     normalize: Option<Spanned<NormalizeIn>>,
     #[serde(default)]
     kernel: Vec<Spanned<KernelIn>>,
@@ -73,6 +76,8 @@ struct FileOut<'a> {
     op: Op,
     #[serde(skip_serializing_if = "Option::is_none")]
     description: Option<&'a str>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pad: Option<crate::border::PadMode>,
     #[serde(skip_serializing_if = "Option::is_none")]
     normalize: Option<NormalizeIn>,
     kernel: Vec<KernelOut<'a>>,
@@ -225,9 +230,18 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
             .map_err(|e| at(span, e.problem()))?;
         normalize = Some(norm);
     }
+    // Banks that `bank import` wrote before bank files named their pad mode
+    // say where they came from; they keep zero, what the network saw.
+    let imported = file
+        .description
+        .as_deref()
+        .is_some_and(|d| d.starts_with("imported from "));
     let bank = Bank {
         name,
         op: file.op.unwrap_or(Op::Correlate),
+        pad: file
+            .pad
+            .or(imported.then_some(crate::border::PadMode::Zero)),
         description: file.description,
         kernels,
         normalize,
@@ -273,6 +287,7 @@ pub fn bank_to_toml(bank: &Bank) -> Result<String, Error> {
         name: &bank.name,
         op: bank.op,
         description: bank.description.as_deref(),
+        pad: bank.pad,
         normalize: bank.normalize.as_ref().map(|n| NormalizeIn {
             mean: n.mean.clone(),
             std: n.std.clone(),

@@ -163,6 +163,8 @@ pub fn import_bank(path: &Path, opts: &ImportOptions) -> Result<Bank, Error> {
     let bank = Bank {
         name,
         op: opts.op.unwrap_or(Op::Correlate),
+        // What the network saw in training.
+        pad: Some(crate::border::PadMode::Zero),
         description: Some(format!(
             "imported from {} tensor {} {:?} ({}, {}){}",
             path.file_name()

@@ -236,6 +236,10 @@ pub struct Bank {
     /// Input normalisation the bank was trained with, applied before its conv
     /// stage: x' = (x − mean_c) / std_c per input channel.
     pub normalize: Option<Normalize>,
+    /// The pad mode the bank asks for where neither the recipe nor a flag
+    /// names one (imported weights: zero, what the network saw); `None`: the
+    /// default for built-in and hand-written banks ([`crate::stage::DEFAULT_PAD`]).
+    pub pad: Option<crate::border::PadMode>,
 }
 
 /// Per-channel input normalisation, in the [0, 1] units of the image reader.

@@ -1,10 +1,12 @@
 //! Stages and recipes: what is computed, in order (conv, act, pool).
 
 pub mod act;
+pub mod pads;
 pub mod pool;
 pub mod recipe;
 pub mod recipefile;
 
 pub use act::Activation;
+pub use pads::{default_pad, PadReason, DEFAULT_PAD};
 pub use pool::{Pool, PoolKind, PoolWindow};
 pub use recipe::{Recipe, RecipeSpec, Stage};

@@ -146,6 +146,10 @@ pub struct RecipeSpec {
     pub input: ReadOptions,
     /// The stages.
     pub recipe: Recipe,
+    /// Why each conv stage pads as it does, in stage order, where a recipe
+    /// file or flags decided it (see [`crate::stage::pads`]); empty when the
+    /// spec was built in code with its modes given.
+    pub pads: Vec<crate::stage::PadReason>,
 }
 
 impl RecipeSpec {

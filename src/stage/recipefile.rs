@@ -10,7 +10,7 @@
 //! conv = "edges"                # a bank: shipped name, families joined by '+', or a
 //!                               # .toml file (relative to this recipe's folder)
 //! op = "correlate"              # optional: overrides the bank's op
-//! pad = "reflect"               # zero | replicate | reflect | symmetric | wrap (default zero)
+//! pad = "reflect"               # zero | replicate | reflect | symmetric | wrap (default: see stage::pads)
 //! extent = "same"               # valid | same | full (default same) …
 //! # pad_width = 2               # … or explicit: N or [top, bottom, left, right]
 //! stride = 1                    # N or [rows, cols]
@@ -161,6 +161,7 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
     }
     let dir = origin.parent();
     let mut stages = Vec::with_capacity(file.stage.len());
+    let mut pads = Vec::new();
     for (i, st) in file.stage.into_iter().enumerate() {
         let place = Some(line_col(text, st.span().start));
         let at = |m: String| located(place, format!("stage {}: {m}", i + 1));
@@ -178,8 +179,16 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
             if let Some(op) = &s.op {
                 o.op = Some(op.parse::<Op>().map_err(&at)?);
             }
-            if let Some(p) = &s.pad {
-                o.pad = p.parse::<PadMode>().map_err(&at)?;
+            match &s.pad {
+                Some(p) => {
+                    o.pad = p.parse::<PadMode>().map_err(&at)?;
+                    pads.push(crate::stage::PadReason::Recipe);
+                }
+                None => {
+                    let (mode, why) = crate::stage::default_pad(&bank);
+                    o.pad = mode;
+                    pads.push(why);
+                }
             }
             match (&s.extent, s.pad_width) {
                 (Some(_), Some(_)) => return Err(at("give extent or pad_width, not both".into())),
@@ -273,6 +282,7 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
     Ok(RecipeSpec {
         input,
         recipe: Recipe { stages },
+        pads,
     })
 }
 

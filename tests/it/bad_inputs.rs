@@ -1177,9 +1177,14 @@ fn file_deleted_after_listing_fails_alone() {
             recipe: Recipe {
                 stages: vec![Stage::Conv(ConvStage {
                     bank: resolve_bank("edges").unwrap(),
-                    options: ConvOptions::default(),
+                    // What `--bank edges` on the command line pads with.
+                    options: ConvOptions {
+                        pad: tapmap::stage::DEFAULT_PAD,
+                        ..ConvOptions::default()
+                    },
                 })],
             },
+            pads: Vec::new(),
         },
         engine: Engine::Auto,
         out_dir: out.clone(),

@@ -32,6 +32,7 @@ fn family(spec: &str) -> Bank {
 fn taps(rows: &[Vec<f64>]) -> Bank {
     Bank {
         normalize: None,
+        pad: None,
         name: "t".into(),
         op: Op::Correlate,
         description: None,

@@ -541,3 +541,81 @@ fn every_engine_can_be_forced_from_the_command_line() {
             "expected auto, reference, direct, separable, matmul or fft",
         ));
 }
+
+#[test]
+fn the_default_pad_mode_follows_what_the_bank_is_and_says_why() {
+    let t = TempDir::new().unwrap();
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let pads = |args: &[&str]| -> (String, String) {
+        let out = tapmap()
+            .args(["reckon", "--size", "32x24", "--json"])
+            .args(args)
+            .assert()
+            .success()
+            .get_output()
+            .stdout
+            .clone();
+        let v: serde_json::Value = serde_json::from_slice(&out).unwrap();
+        (
+            v["pads"][0]["mode"].as_str().unwrap().to_string(),
+            v["pads"][0]["why"].as_str().unwrap().to_string(),
+        )
+    };
+    // Built-in banks: the border study's best on the line captures.
+    let (mode, why) = pads(&["--bank", "edges"]);
+    assert_eq!(mode, "symmetric");
+    assert!(why.starts_with("default for built-in"), "{why}");
+    // Trained weights keep zero, given directly or through `bank import`.
+    let weights = root.join("sample_data/learned/first-layer.safetensors");
+    let w = format!("{}:conv1.weight", weights.display());
+    assert_eq!(pads(&["--bank", &w]).0, "zero");
+    let imported = t.path().join("learned.toml");
+    tapmap()
+        .args(["bank", "import"])
+        .arg(&weights)
+        .args(["--tensor", "conv1.weight", "-o"])
+        .arg(&imported)
+        .assert()
+        .success();
+    assert!(std::fs::read_to_string(&imported)
+        .unwrap()
+        .contains("pad = \"zero\""));
+    let (mode, why) = pads(&["--bank", imported.to_str().unwrap()]);
+    assert_eq!(
+        (mode.as_str(), why.contains("trained weights")),
+        ("zero", true)
+    );
+    // A bank file that names its mode, a recipe that does, and the flag.
+    let wrap = t.path().join("wrap.toml");
+    std::fs::write(
+        &wrap,
+        "name = \"w\"\npad = \"wrap\"\n[[kernel]]\nname = \"k\"\nfamily = \"box\"\n",
+    )
+    .unwrap();
+    assert_eq!(
+        pads(&["--bank", wrap.to_str().unwrap()]),
+        ("wrap".into(), "the bank file names it".into())
+    );
+    let recipe = root.join("kernels/line-a-edges.recipe.toml");
+    assert_eq!(pads(&["--recipe", recipe.to_str().unwrap()]).0, "reflect");
+    assert_eq!(
+        pads(&["--bank", "edges", "--pad", "zero"]),
+        ("zero".into(), "--pad".into())
+    );
+    // The manifest keeps the mode and the reason.
+    let img = grey8(t.path(), "a.png", 9, 7);
+    let out = t.path().join("o");
+    tapmap()
+        .args(["apply", "--bank", "edges", "-q", "-o"])
+        .arg(&out)
+        .arg(&img)
+        .assert()
+        .success();
+    let m: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("manifest.json")).unwrap()).unwrap();
+    assert_eq!(m["recipe"]["stages"][0]["pad"], "symmetric");
+    assert!(m["recipe"]["stages"][0]["pad_reason"]
+        .as_str()
+        .unwrap()
+        .starts_with("default"));
+}

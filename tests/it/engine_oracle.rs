@@ -58,6 +58,7 @@ fn stage_of(case: &Case) -> ConvStage {
     ConvStage {
         bank: Bank {
             normalize: None,
+            pad: None,
             name: "case".into(),
             op: Op::Correlate,
             description: None,
@@ -362,6 +363,7 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
         let stage = ConvStage {
             bank: Bank {
                 normalize: None,
+                pad: None,
                 name: "l".into(),
                 op: Op::Correlate,
                 description: None,
@@ -496,6 +498,7 @@ fn every_strategy_is_bit_identical_for_any_thread_count() {
     let stage = ConvStage {
         bank: Bank {
             normalize: None,
+            pad: None,
             name: "b".into(),
             op: Op::Convolve,
             description: None,

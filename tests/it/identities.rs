@@ -15,6 +15,7 @@ fn stage(kernels: Vec<Kernel>, op: Op, pad: PadMode, extent: Extent) -> ConvStag
     ConvStage {
         bank: Bank {
             normalize: None,
+            pad: None,
             name: "t".into(),
             op,
             description: None,

@@ -193,6 +193,7 @@ fn bank_files_round_trip_exactly() {
     ];
     banks.push(Bank {
         normalize: None,
+        pad: None,
         name: "odd values".into(),
         op: Op::Convolve,
         description: Some("quotes \" and \n newlines".into()),
@@ -200,6 +201,7 @@ fn bank_files_round_trip_exactly() {
     });
     banks.push(Bank {
         normalize: None,
+        pad: None,
         name: "three planes".into(),
         op: Op::Correlate,
         description: None,

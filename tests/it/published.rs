@@ -16,6 +16,7 @@ use tapmap::stage::{Pool, PoolKind, PoolWindow};
 fn one_kernel_bank(k: Kernel) -> Bank {
     Bank {
         normalize: None,
+        pad: None,
         name: "t".into(),
         op: Op::Correlate,
         description: None,

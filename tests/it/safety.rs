@@ -61,6 +61,7 @@ fn edges_spec() -> tapmap::stage::RecipeSpec {
             None,
             None,
         ),
+        pads: Vec::new(),
     }
 }
 
