@@ -449,7 +449,7 @@ def pairings(tapmap, inp, side):
     quiet = ["--quiet", "--out", "{OUT}"]
     edges = [tapmap, "apply", "--bank", "sobel-x+sobel-y+laplace-8", "--white", "4095", "--pad", "reflect",
              "--act", "abs"] + quiet + [batch]
-    sobel2 = [tapmap, "apply", "--bank", "sobel-x+sobel-y"] + quiet + [img]
+    sobel2 = [tapmap, "apply", "--bank", "sobel-x+sobel-y", "--pad", "zero"] + quiet + [img]
     e_apply = [tapmap, "apply", "--bank", w16, "--white", "4095", "--save", "maps"] + quiet + [cap]
     # The I/O floor of a maps-only run: the same bytes read and written by the
     # plainest processes there are, no computation (cat, head). On a machine
