@@ -140,7 +140,7 @@ pub fn input_picture(img: &crate::image_io::LoadedImage) -> image::RgbImage {
 }
 
 /// Display range of an input: (0, 1) for integer samples, min–max for float.
-fn display_range(img: &crate::image_io::LoadedImage) -> (f32, f32) {
+pub fn display_range(img: &crate::image_io::LoadedImage) -> (f32, f32) {
     if img.meta.float {
         let f = img.data.iter().copied().filter(|v| v.is_finite());
         let lo = f.clone().fold(f32::INFINITY, f32::min);

@@ -68,6 +68,8 @@ pub struct Key<'a> {
     pub lo: f64,
     /// Value at the right end.
     pub hi: f64,
+    /// What the values are: `response` for maps, `input` for input patches.
+    pub unit: &'static str,
 }
 
 /// One cell of a sheet: a picture, its label (wrapped, never cut) and an
@@ -125,7 +127,7 @@ fn draw_key(out: &mut RgbImage, x: u32, y: u32, width: u32, key: &Key) {
         let zw = text_width("0");
         draw_text(out, x + width / 2 - zw / 2, ny, "0", INK);
     }
-    draw_text(out, x, ny + LINE, "response", INK);
+    draw_text(out, x, ny + LINE, key.unit, INK);
 }
 
 /// Lays out labelled pictures in a near-square grid under a title.

@@ -332,4 +332,8 @@ fn difference_views_say_what_they_show() {
         amber >= 100 && cyan >= 100,
         "swatches: amber {amber}, cyan {cyan}"
     );
+    // And the grey scale as a bar: black at its left end, white at its right.
+    let last = v.height() - 3;
+    assert_eq!(v.get_pixel(4, last).0, [0, 0, 0]);
+    assert_eq!(v.get_pixel(4 + 255, last).0, [255, 255, 255]);
 }

@@ -253,6 +253,14 @@ fn probe_patches_show_their_field_framed_in_context() {
     let framed = sheet.pixels().filter(|p| p.0 == frame).count();
     // Three hits, each a 2-pixel frame around a 3×3 field enlarged to a cell.
     assert!(framed > 3 * 4 * 2 * 40, "{framed} frame pixels");
+    // Each patch has its key: the input's grey scale from black (0) to white (1).
+    let bar = (0..sheet.height()).any(|y| {
+        sheet.get_pixel(8, y).0 == [0, 0, 0] && {
+            let p = sheet.get_pixel(8 + 150, y).0;
+            p[0] > 150 && p[0] == p[2]
+        }
+    });
+    assert!(bar, "a grey key under the patches");
     // The frame encloses input pixels of the patch, not only background.
     let patch = tapmap::jobs::probe::patch_in_context(
         &tapmap::image_io::read_image(&p, &Default::default()).unwrap(),

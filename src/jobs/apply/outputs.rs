@@ -279,6 +279,7 @@ fn write_outputs(
                     table: matches!(m.scale, view::Scale::Diverging).then_some(cx.table),
                     lo: m.lo,
                     hi: m.hi,
+                    unit: "response",
                 };
                 if cx.save.keys {
                     let cell = sheet::Cell {

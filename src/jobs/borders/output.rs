@@ -312,8 +312,9 @@ pub fn write_difference_views(
     Ok(jobs.len())
 }
 
-/// A difference view with two lines under it saying what it shows: the
-/// channel, the mode and the grey scale's range, and which outline is which.
+/// A difference view with two lines under it saying what it shows (the
+/// channel, the mode and the grey scale's range, and which outline is which)
+/// and the grey scale as a bar.
 /// Drawn in the view's own palette (text in its greys, swatches in the
 /// outline colours).
 fn with_caption(map: GrayImage, k: usize, ch: &ChannelStudy, mode: PadMode, hi: f32) -> GrayImage {
@@ -336,7 +337,7 @@ fn with_caption(map: GrayImage, k: usize, ch: &ChannelStudy, mode: PadMode, hi: 
         .width()
         .max(6 + text_width(&first))
         .max(40 + text_width(&measured) + text_width(&predicted));
-    let height = map.height() + 6 + 2 * LINE;
+    let height = map.height() + 6 + 2 * LINE + 12;
     let mut text = RgbImage::new(width, height);
     let ink = Rgb([255, 255, 255]);
     let y0 = map.height() + 3;
@@ -349,6 +350,15 @@ fn with_caption(map: GrayImage, k: usize, ch: &ChannelStudy, mode: PadMode, hi: 
         Luma([((v * GREYS as u32 + 127) / 255) as u8])
     });
     image::imageops::replace(&mut out, &map, 0, 0);
+    // The grey scale itself: 0 at the left, the largest difference at the right.
+    let bar_y = height - 10;
+    let bar_w = (width - 8).min(256);
+    for x in 0..bar_w {
+        let level = (x * GREYS as u32 / (bar_w - 1).max(1)) as u8;
+        for dy in 0..8 {
+            out.put_pixel(4 + x, bar_y + dy, Luma([level]));
+        }
+    }
     for (x, index) in [(4, MEASURED), (x2 - 14, PREDICTED)] {
         for dy in 3..13 {
             for dx in 0..10 {

@@ -14,7 +14,7 @@ use crate::jobs::probe::{channel_hits, merge, Hit};
 use crate::jobs::tables::write_csv;
 use crate::jobs::{for_each_parallel, safe_name, thread_pool, Observer, Stop};
 use crate::pipeline::PlanCache;
-use crate::render::sheet::{sheet, sheet_with_columns};
+use crate::render::sheet::sheet_with_columns;
 use crate::stage::{RecipeSpec, Stage};
 
 /// Column names of `probe.csv` (schema `shared/schemas/probe.csv.json`).
@@ -258,8 +258,24 @@ fn write_results(
                 )
             })
             .collect();
-        let pages = cells.len().div_ceil(SHEET_HITS);
-        for (page, part) in cells.chunks(SHEET_HITS).enumerate() {
+        // On the kernel sheets each patch has its key: the input values drawn
+        // black and white.
+        let keyed: Vec<crate::render::sheet::Cell> = cells
+            .iter()
+            .zip(hits)
+            .map(|((label, patch), h)| crate::render::sheet::Cell {
+                label: label.clone(),
+                picture: patch.clone(),
+                key: Some(crate::render::sheet::Key {
+                    table: None,
+                    lo: f64::from(h.shown.0),
+                    hi: f64::from(h.shown.1),
+                    unit: "input",
+                }),
+            })
+            .collect();
+        let pages = keyed.len().div_ceil(SHEET_HITS);
+        for (page, part) in keyed.chunks(SHEET_HITS).enumerate() {
             let first = page * SHEET_HITS + 1;
             let title = if pages > 1 {
                 format!(
@@ -271,7 +287,7 @@ fn write_results(
             } else {
                 format!("{name}: top {} of {images} image(s)", cells.len())
             } + "; the green frame marks each hit's receptive field";
-            let s = sheet(&title, part);
+            let s = crate::render::sheet::sheet_of(&title, part, 0);
             let stem = format!("{ch:02}-{}", safe_name(name));
             let path = kernels_dir.join(page_name(&stem, page));
             written.push(format!("kernels/{}", page_name(&stem, page)));

@@ -45,6 +45,8 @@ pub struct Hit {
     pub clipped: bool,
     /// The input patch.
     pub patch: RgbImage,
+    /// The input values drawn black and white in the patch.
+    pub shown: (f32, f32),
 }
 
 /// The total order of hits: response descending (NaN last), then path, y, x.
@@ -168,6 +170,7 @@ pub fn channel_hits(
     let mut grid: std::collections::HashMap<(usize, usize), Vec<(usize, usize)>> =
         std::collections::HashMap::new();
     let (_, ih, iw) = img.data.dim();
+    let shown = crate::render::display_range(img);
     let mut out = Vec::with_capacity(k);
     for Candidate { v, i } in best {
         if out.len() == k {
@@ -203,6 +206,7 @@ pub fn channel_hits(
             region,
             clipped,
             patch: patch_in_context(img, region),
+            shown,
         });
     }
     out
