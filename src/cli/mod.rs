@@ -148,9 +148,18 @@ pub fn main() -> i32 {
 fn run_command() -> i32 {
     let cli = match Cli::try_parse() {
         Ok(c) => c,
+        Err(e) if e.use_stderr() => {
+            // The one message style: `tapmap: error: what is wrong`, then clap's
+            // usage line and hint of what to do.
+            let text = e.render().to_string();
+            let text = text.strip_prefix("error: ").unwrap_or(&text);
+            tell!("tapmap: error: {}", text.trim_end());
+            return EXIT_USAGE;
+        }
         Err(e) => {
-            let _ = e.print();
-            return if e.use_stderr() { EXIT_USAGE } else { EXIT_OK };
+            // --help and --version.
+            say!("{}", e.render());
+            return EXIT_OK;
         }
     };
     let outcome = match cli.command {

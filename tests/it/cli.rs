@@ -619,3 +619,71 @@ fn the_default_pad_mode_follows_what_the_bank_is_and_says_why() {
         .unwrap()
         .starts_with("default"));
 }
+
+#[test]
+fn every_error_and_warning_speaks_in_one_style() {
+    let t = TempDir::new().unwrap();
+    let good = grey8(t.path(), "good.png", 12, 10);
+    let bad = t.path().join("bad.png");
+    std::fs::write(&bad, b"not an image").unwrap();
+    let out = t.path().join("o");
+    let cases: Vec<(Vec<std::ffi::OsString>, i32)> = vec![
+        // A flag's value clap refuses.
+        (
+            ["reckon", "--size", "10by10", "--bank", "edges"]
+                .map(Into::into)
+                .to_vec(),
+            2,
+        ),
+        // A set-up error before any work.
+        (
+            ["apply", "--bank", "no-such-bank", "-o"]
+                .map(Into::into)
+                .into_iter()
+                .chain([out.clone().into(), good.clone().into()])
+                .collect(),
+            2,
+        ),
+        // One bad input among good ones, and a warning.
+        (
+            ["apply", "--bank", "edges", "--view-depth", "16", "-o"]
+                .map(Into::into)
+                .into_iter()
+                .chain([out.clone().into(), good.clone().into(), bad.clone().into()])
+                .collect(),
+            1,
+        ),
+    ];
+    for (args, code) in cases {
+        let o = tapmap().args(&args).assert().code(code);
+        let err = String::from_utf8_lossy(&o.get_output().stderr).into_owned();
+        let first = err.lines().next().unwrap_or_default();
+        assert!(
+            first.starts_with("tapmap: error: ") || first.starts_with("tapmap: warning: "),
+            "{args:?}:\n{err}"
+        );
+        for line in err
+            .lines()
+            .filter(|l| l.contains("error") || l.contains("warning"))
+        {
+            if line.starts_with("tapmap:") {
+                assert!(
+                    line.starts_with("tapmap: error: ") || line.starts_with("tapmap: warning: "),
+                    "{line}"
+                );
+            }
+        }
+    }
+    // The failed input names its file and the problem.
+    let o = tapmap()
+        .args(["apply", "--bank", "edges", "-o"])
+        .arg(&out)
+        .arg(&bad)
+        .assert()
+        .code(1);
+    let err = String::from_utf8_lossy(&o.get_output().stderr).into_owned();
+    assert!(
+        err.contains("tapmap: error: ") && err.contains("bad.png: "),
+        "{err}"
+    );
+}
