@@ -14,7 +14,6 @@ use crate::jobs::probe::{channel_hits, merge, Hit};
 use crate::jobs::tables::write_csv;
 use crate::jobs::{for_each_parallel, safe_name, thread_pool, Observer, Stop};
 use crate::pipeline::PlanCache;
-use crate::render::sheet::sheet_with_columns;
 use crate::stage::{RecipeSpec, Stage};
 
 /// Column names of `probe.csv` (schema `shared/schemas/probe.csv.json`).
@@ -297,20 +296,35 @@ fn write_results(
             let base = name.split('@').next().unwrap_or(name);
             b.kernels.iter().find(|kk| kk.name == base)
         });
-        let tap_cell = kernel.map_or_else(
-            || image::RgbImage::new(1, 1),
-            |kk| crate::render::taps::taps_picture(kk, &taps),
-        );
-        let shown = k.min(OVERVIEW_HITS);
-        overview.push((format!("row {}: {name}, taps", ch + 1), tap_cell));
-        for c in 0..shown {
-            match cells.get(c) {
-                Some(cell) => overview.push(cell.clone()),
-                None => overview.push((
-                    String::new(),
-                    image::RgbImage::from_pixel(1, 1, image::Rgb([30, 33, 36])),
-                )),
+        // The taps with their own key (each kernel scaled to its ±max), then
+        // the strongest patches with theirs.
+        let tap_cell = match kernel {
+            Some(kk) => {
+                let m = crate::render::taps::extreme(kk);
+                crate::render::sheet::Cell {
+                    label: format!("row {}: {name}, taps", ch + 1),
+                    picture: crate::render::taps::taps_cell(kk, &taps, false),
+                    key: Some(crate::render::sheet::Key {
+                        table: Some(&taps),
+                        lo: -m,
+                        hi: m,
+                        unit: "tap",
+                    }),
+                }
             }
+            None => crate::render::sheet::Cell {
+                label: format!("row {}: {name}", ch + 1),
+                picture: image::RgbImage::new(1, 1),
+                key: None,
+            },
+        };
+        overview.push(tap_cell);
+        for c in 0..k.min(OVERVIEW_HITS) {
+            overview.push(keyed.get(c).cloned().unwrap_or(crate::render::sheet::Cell {
+                label: String::new(),
+                picture: image::RgbImage::from_pixel(1, 1, image::Rgb([30, 33, 36])),
+                key: None,
+            }));
         }
     }
     let columns = k.min(OVERVIEW_HITS) + 1;
@@ -327,7 +341,7 @@ fn write_results(
         if pages > 1 {
             title += &format!(", page {} of {pages}", page + 1);
         }
-        let s = sheet_with_columns(&title, part, columns);
+        let s = crate::render::sheet::sheet_of(&title, part, columns);
         written.push(page_name("overview", page));
         crate::render::write_rgb(&out.join(page_name("overview", page)), &s)?;
     }
