@@ -22,6 +22,11 @@ where
     crate::common::tapmap_command().args(args).output().unwrap()
 }
 
+/// `tapmap apply --bank BANK -o OUT INPUT`.
+fn apply_bank(bank: &str, out: &str, input: &str) -> Output {
+    tapmap(["apply", "--bank", bank, "-o", out, input])
+}
+
 fn stderr(o: &Output) -> String {
     String::from_utf8_lossy(&o.stderr).into_owned()
 }
@@ -300,14 +305,7 @@ fn outputs_of_a_run_are_never_read_as_input() {
     );
     let view = out.join("views/a/00-sobel-x.png");
     assert!(view.is_file());
-    let o = tapmap([
-        "apply",
-        "--bank",
-        "edges",
-        "-o",
-        s(&t.path().join("x")),
-        s(&view),
-    ]);
+    let o = apply_bank("edges", s(&t.path().join("x")), s(&view));
     expect(&o, 2, "a view named as input");
     assert!(
         stderr(&o).contains("the folder of a tapmap run"),
@@ -331,7 +329,7 @@ fn outputs_of_a_run_are_never_read_as_input() {
     let d = t.path().join("d");
     grey(&d.join("b/c.png"), 9, 9, 3);
     for input in [d.clone(), d.join("b")] {
-        let o = tapmap(["apply", "--bank", "edges", "-o", s(&d), s(&input)]);
+        let o = apply_bank("edges", s(&d), s(&input));
         expect(&o, 2, "input inside --out");
         assert!(
             stderr(&o).contains("lies inside the output folder"),
@@ -350,7 +348,7 @@ fn one_run_at_a_time_writes_into_a_folder() {
     let out = t.path().join("o");
     std::fs::create_dir_all(&out).unwrap();
     let held = tapmap::jobs::OutLock::take(&out).unwrap();
-    let o = tapmap(["apply", "--bank", "edges", "-o", s(&out), s(&a)]);
+    let o = apply_bank("edges", s(&out), s(&a));
     expect(&o, 2, "while locked");
     let e = stderr(&o);
     assert!(
@@ -471,14 +469,7 @@ fn overflowing_taps_and_sums_are_caught() {
         "name = \"huge\"\n[[kernel]]\nname = \"k\"\ntaps = [[1e300]]\n",
     )
     .unwrap();
-    let o = tapmap([
-        "apply",
-        "--bank",
-        s(&huge),
-        "-o",
-        s(&t.path().join("x")),
-        s(&a),
-    ]);
+    let o = apply_bank(s(&huge), s(&t.path().join("x")), s(&a));
     expect(&o, 2, "1e300 tap");
     assert!(stderr(&o).contains("huge.toml"), "{}", stderr(&o));
     // Nine taps of 3e38 each fit float32, but no response could.
@@ -488,14 +479,7 @@ fn overflowing_taps_and_sums_are_caught() {
         "name = \"big\"\n[[kernel]]\nname = \"k\"\ntaps = [[3e38, 3e38, 3e38], [3e38, 3e38, 3e38], [3e38, 3e38, 3e38]]\n",
     )
     .unwrap();
-    let o = tapmap([
-        "apply",
-        "--bank",
-        s(&big),
-        "-o",
-        s(&t.path().join("x")),
-        s(&a),
-    ]);
+    let o = apply_bank(s(&big), s(&t.path().join("x")), s(&a));
     expect(&o, 2, "taps whose sum overflows");
     assert!(
         stderr(&o).contains("larger than float32 can hold"),
@@ -514,7 +498,7 @@ fn overflowing_taps_and_sums_are_caught() {
         "name = \"pair\"\n[[kernel]]\nname = \"sum2\"\ntaps = [[1, 1]]\n",
     )
     .unwrap();
-    let o = tapmap(["apply", "--bank", s(&pair), "-o", s(&out), s(&w)]);
+    let o = apply_bank(s(&pair), s(&out), s(&w));
     expect(&o, 1, "overflowing sums");
     assert!(stderr(&o).contains("not finite"), "{}", stderr(&o));
     assert_eq!(column(&out.join("images.csv"), "status"), vec!["failed"]);
@@ -531,7 +515,7 @@ fn a_table_write_failure_keeps_the_results_and_resume_finishes() {
     let out = t.path().join("o");
     // A folder where stats.csv goes: the rename onto it fails, as a full disk would.
     std::fs::create_dir_all(out.join("stats.csv")).unwrap();
-    let o = tapmap(["apply", "--bank", "edges", "-o", s(&out), s(&inp)]);
+    let o = apply_bank("edges", s(&out), s(&inp));
     expect(&o, 1, "tables not written");
     assert!(stderr(&o).contains("--resume"), "{}", stderr(&o));
     assert!(out.join("maps/a.npy").is_file());
@@ -838,14 +822,7 @@ fn non_utf8_names_are_kept_apart_and_recorded_without_loss() {
 fn a_missing_input_is_a_usage_error_before_anything_is_made() {
     let t = TempDir::new().unwrap();
     let out = t.path().join("o");
-    let o = tapmap([
-        "apply",
-        "--bank",
-        "edges",
-        "-o",
-        s(&out),
-        s(&t.path().join("gone.png")),
-    ]);
+    let o = apply_bank("edges", s(&out), s(&t.path().join("gone.png")));
     expect(&o, 2, "missing input");
     assert!(
         stderr(&o).contains("no such file or folder"),
@@ -924,7 +901,7 @@ fn damaged_npy_headers_and_trailing_bytes_are_refused_for_inputs_and_banks() {
         let p = t.path().join(name);
         std::fs::write(&p, bytes).unwrap();
         let out = t.path().join(format!("o-{name}"));
-        let o = tapmap(["apply", "--bank", "identity", "-o", s(&out), s(&p)]);
+        let o = apply_bank("identity", s(&out), s(&p));
         expect(&o, 1, name);
         assert!(stderr(&o).contains(needle), "{name}: {}", stderr(&o));
         // As a bank (a 3×3 kernel).
@@ -944,14 +921,7 @@ fn collisions_links_tiff_layouts_control_characters_and_idle_rates() {
     for n in ["a.png", "a.bmp", "a.tif", "b.png", "b.bmp", "c.png"] {
         grey(&inp.join(n), 8, 8, 1);
     }
-    let o = tapmap([
-        "apply",
-        "--bank",
-        "edges",
-        "-o",
-        s(&t.path().join("o")),
-        s(&inp),
-    ]);
+    let o = apply_bank("edges", s(&t.path().join("o")), s(&inp));
     expect(&o, 2, "collisions");
     let e = stderr(&o);
     assert!(
@@ -963,7 +933,7 @@ fn collisions_links_tiff_layouts_control_characters_and_idle_rates() {
     let link = t.path().join("link");
     std::os::unix::fs::symlink(t.path().join("nowhere"), &link).unwrap();
     let c = inp.join("c.png");
-    let o = tapmap(["apply", "--bank", "edges", "-o", s(&link), s(&c)]);
+    let o = apply_bank("edges", s(&link), s(&c));
     expect(&o, 2, "dangling --out");
     assert!(
         stderr(&o).contains("symbolic link to") && stderr(&o).contains("does not exist"),
@@ -978,14 +948,7 @@ fn collisions_links_tiff_layouts_control_characters_and_idle_rates() {
         enc.write_image::<tiff::encoder::colortype::GrayI16>(4, 3, &[-3i16; 12])
             .unwrap();
     }
-    let o = tapmap([
-        "apply",
-        "--bank",
-        "edges",
-        "-o",
-        s(&t.path().join("ti")),
-        s(&tif),
-    ]);
+    let o = apply_bank("edges", s(&t.path().join("ti")), s(&tif));
     expect(&o, 1, "int16 TIFF");
     assert!(
         stderr(&o).contains("16-bit signed integer"),
