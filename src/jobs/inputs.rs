@@ -508,3 +508,24 @@ pub fn list_digest(items: &[InputItem]) -> String {
     }
     crate::digest::sha256_hex(text.as_bytes())
 }
+
+/// Reads an input's bytes once and decodes them, the SHA-256 of the same
+/// bytes computed on another core meanwhile. The digest is there whenever the
+/// bytes could be read, even if they do not decode.
+pub fn read_with_digest(
+    item: &InputItem,
+    spec: &crate::stage::RecipeSpec,
+) -> (Option<String>, Result<crate::image_io::LoadedImage, Error>) {
+    if let Some(p) = &item.problem {
+        return (None, Err(Error::decode(&item.source, p.clone())));
+    }
+    let bytes = match crate::image_io::read_input(&item.source, &spec.input.limits) {
+        Ok(b) => b,
+        Err(e) => return (None, Err(e)),
+    };
+    let (sha, img) = rayon::join(
+        || crate::digest::sha256_hex(&bytes),
+        || crate::image_io::decode_image(&bytes, &item.source, &spec.input),
+    );
+    (Some(sha), img)
+}

@@ -13,7 +13,6 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::Error;
 use crate::image_io::atomic::write_atomic;
-use crate::image_io::{decode_image, read_input, LoadedImage};
 use crate::jobs::inputs::InputItem;
 use crate::jobs::manifest::{recipe_record, FileRecord, RecipeRecord};
 use crate::stage::RecipeSpec;
@@ -65,25 +64,6 @@ pub struct StudyInput {
     pub status: String,
     /// Why it failed.
     pub error: Option<String>,
-}
-
-/// Reads and decodes an input once, its digest beside the decode.
-pub fn read_with_digest(
-    item: &InputItem,
-    spec: &RecipeSpec,
-) -> (Option<String>, Result<LoadedImage, Error>) {
-    if let Some(p) = &item.problem {
-        return (None, Err(Error::decode(&item.source, p.clone())));
-    }
-    let bytes = match read_input(&item.source, &spec.input.limits) {
-        Ok(b) => b,
-        Err(e) => return (None, Err(e)),
-    };
-    let (sha, img) = rayon::join(
-        || crate::digest::sha256_hex(&bytes),
-        || decode_image(&bytes, &item.source, &spec.input),
-    );
-    (Some(sha), img)
 }
 
 /// What a study records as it runs, then writes.

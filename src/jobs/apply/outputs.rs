@@ -7,10 +7,9 @@ use std::path::{Path, PathBuf};
 
 use ndarray::Array3;
 
-use crate::digest::sha256_hex;
 use crate::engine::Engine;
 use crate::error::Error;
-use crate::image_io::{decode_image, read_input, LoadedImage};
+use crate::image_io::LoadedImage;
 use crate::jobs::inputs::InputItem;
 use crate::jobs::manifest::{FileRecord, InputRecord, ViewRecord};
 use crate::jobs::tables::{Finished, ImageRow, StatsRow};
@@ -57,18 +56,9 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
     let mut stats = Vec::new();
     let mut written: Vec<PathBuf> = Vec::new();
     let result = (|| -> Result<(), Error> {
-        if let Some(p) = &item.problem {
-            return Err(Error::decode(&item.source, p.clone()));
-        }
-        let bytes = read_input(&item.source, &cx.spec.input.limits)?;
-        // The digest and the decoder read the same bytes, each on its own core.
-        let (sha, img) = rayon::join(
-            || sha256_hex(&bytes),
-            || decode_image(&bytes, &item.source, &cx.spec.input),
-        );
-        row.sha256 = Some(sha);
+        let (sha, img) = crate::jobs::inputs::read_with_digest(item, cx.spec);
+        row.sha256 = sha;
         let img = img?;
-        drop(bytes);
         row.meta = Some(img.meta.clone());
         let plan = cx
             .plans
