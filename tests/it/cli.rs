@@ -547,15 +547,9 @@ fn the_default_pad_mode_follows_what_the_bank_is_and_says_why() {
     let t = TempDir::new().unwrap();
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
     let pads = |args: &[&str]| -> (String, String) {
-        let out = tapmap()
-            .args(["reckon", "--size", "32x24", "--json"])
-            .args(args)
-            .assert()
-            .success()
-            .get_output()
-            .stdout
-            .clone();
-        let v: serde_json::Value = serde_json::from_slice(&out).unwrap();
+        let mut all = vec!["reckon", "--size", "32x24", "--json"];
+        all.extend_from_slice(args);
+        let v = crate::common::json_of(&all);
         (
             v["pads"][0]["mode"].as_str().unwrap().to_string(),
             v["pads"][0]["why"].as_str().unwrap().to_string(),

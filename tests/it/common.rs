@@ -250,3 +250,14 @@ pub fn tapmap_command() -> std::process::Command {
     }
     c
 }
+
+/// Standard output of a successful tapmap command, parsed as JSON.
+pub fn json_of(args: &[&str]) -> serde_json::Value {
+    let out = tapmap_command().args(args).output().unwrap();
+    assert!(
+        out.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("{args:?}: not JSON: {e}"))
+}

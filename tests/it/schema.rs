@@ -345,17 +345,7 @@ fn foreign_and_newer_records_are_refused_with_what_they_are() {
     );
 }
 
-/// Standard output of a successful tapmap command, parsed as JSON.
-fn json_of(args: &[&str]) -> Value {
-    let out = tapmap()
-        .args(args)
-        .assert()
-        .success()
-        .get_output()
-        .stdout
-        .clone();
-    serde_json::from_slice(&out).unwrap_or_else(|e| panic!("{args:?}: not JSON: {e}"))
-}
+use crate::common::json_of;
 
 #[test]
 fn json_outputs_follow_their_schemas() {
