@@ -190,17 +190,22 @@ struct Excluder {
 /// `manifest.json` that says it is tapmap's (its first bytes name the format:
 /// an apply run's, a merge's, a probe's or a border study's).
 pub fn is_run_folder(dir: &Path) -> bool {
-    let names = |file: &str, format: &str| {
+    // One read of each file's first bytes, checked for every format it may name.
+    let names = |file: &str, formats: &[&str]| {
         use std::io::Read;
         let mut head = [0u8; 256];
         std::fs::File::open(dir.join(file))
             .and_then(|mut f| f.read(&mut head))
-            .is_ok_and(|n| String::from_utf8_lossy(&head[..n]).contains(format))
+            .is_ok_and(|n| {
+                let text = String::from_utf8_lossy(&head[..n]);
+                formats.iter().any(|f| text.contains(f))
+            })
     };
-    names("journal.jsonl", "tapmap-journal")
-        || ["tapmap-manifest", "tapmap-probe", "tapmap-borders"]
-            .iter()
-            .any(|f| names("manifest.json", f))
+    names("journal.jsonl", &["tapmap-journal"])
+        || names(
+            "manifest.json",
+            &["tapmap-manifest", "tapmap-probe", "tapmap-borders"],
+        )
 }
 
 /// Whether a folder between `root` (not included: it was checked before) and
