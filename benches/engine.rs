@@ -102,6 +102,8 @@ fn bank_stage(
             description: None,
             kernels,
             normalize: None,
+            contrast: None,
+            provenance: None,
             pad: None,
         },
         options: ConvOptions {

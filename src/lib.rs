@@ -36,6 +36,7 @@ pub mod geometry;
 pub mod image_io;
 pub mod jobs;
 pub mod kernel;
+pub mod learn;
 pub mod limits;
 pub mod pipeline;
 pub mod render;

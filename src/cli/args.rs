@@ -62,6 +62,18 @@ pub struct StageArgs {
     /// Pool stride: N or ROWS,COLS [default: the window size].
     #[arg(long, value_parser = parse_pair, value_name = "N|ROWS,COLS", requires = "pool")]
     pub pool_stride: Option<(usize, usize)>,
+    #[command(flatten)]
+    pub input: InputArgs,
+    /// Conv strategy: auto (the planner chooses; `reckon` shows the choice and why),
+    /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks),
+    /// fft (large kernels that are not rank 1).
+    #[arg(long, default_value = "auto", value_name = "ENGINE")]
+    pub engine: Engine,
+}
+
+/// How images are read: the same for every command that reads them.
+#[derive(Args, Clone)]
+pub struct InputArgs {
     /// Colour handling: luma (BT.709, one channel), rgb (three channels for three-plane
     /// kernels), split (every kernel over every channel, maps named kernel@channel) [default: luma].
     #[arg(long, value_name = "MODE")]
@@ -81,11 +93,25 @@ pub struct StageArgs {
     /// larger images fail with a message and the run goes on [default: 4G].
     #[arg(long, value_name = "BYTES", value_parser = tapmap::limits::parse_bytes)]
     pub max_memory: Option<u64>,
-    /// Conv strategy: auto (the planner chooses; `reckon` shows the choice and why),
-    /// reference (slow, exact), direct, separable (rank-1 kernels), matmul (large banks),
-    /// fft (large kernels that are not rank 1).
-    #[arg(long, default_value = "auto", value_name = "ENGINE")]
-    pub engine: Engine,
+}
+
+impl InputArgs {
+    /// The flags applied to `opts` (a recipe's input section, or the defaults).
+    pub fn apply_to(&self, opts: &mut ReadOptions) {
+        if let Some(c) = self.color {
+            opts.color = c;
+        }
+        if self.white.is_some() {
+            opts.white = self.white;
+        }
+        if self.ignore_orientation {
+            opts.apply_orientation = false;
+        }
+        opts.limits.max_pixels = self.max_pixels;
+        if let Some(m) = self.max_memory {
+            opts.limits.max_memory = m;
+        }
+    }
 }
 
 /// Output folder, quietness and inputs: the same for every command that reads images.
@@ -277,19 +303,7 @@ impl StageArgs {
             }
             None => {}
         }
-        if let Some(c) = self.color {
-            spec.input.color = c;
-        }
-        if self.white.is_some() {
-            spec.input.white = self.white;
-        }
-        if self.ignore_orientation {
-            spec.input.apply_orientation = false;
-        }
-        spec.input.limits.max_pixels = self.max_pixels;
-        if let Some(m) = self.max_memory {
-            spec.input.limits.max_memory = m;
-        }
+        self.input.apply_to(&mut spec.input);
         spec.validate()?;
         Ok(spec)
     }

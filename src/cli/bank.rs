@@ -82,6 +82,9 @@ pub enum BankCommand {
         #[arg(long)]
         values: bool,
     },
+    /// Learn a bank from patches of the images: principal components or k-means.
+    #[command(after_help = super::learn::AFTER_HELP)]
+    Learn(Box<super::learn::LearnArgs>),
     /// Write a bank file from built-in families.
     #[command(after_help = "Examples:\n  \
         tapmap bank make sobel-x sobel-y -o edges.toml\n  \
@@ -119,6 +122,7 @@ fn refuse_overwrite(out: &std::path::Path, force: bool) -> Result<(), Error> {
 
 pub fn run(cmd: BankCommand) -> Result<i32, Error> {
     match cmd {
+        BankCommand::Learn(a) => super::learn::run(*a),
         BankCommand::Import {
             file,
             tensor,

@@ -26,6 +26,7 @@ mod apply;
 mod args;
 mod bank;
 mod borders;
+mod learn;
 mod merge;
 mod probe;
 mod reckon;

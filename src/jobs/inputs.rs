@@ -519,18 +519,18 @@ pub fn list_digest(items: &[InputItem]) -> String {
 /// bytes could be read, even if they do not decode.
 pub fn read_with_digest(
     item: &InputItem,
-    spec: &crate::stage::RecipeSpec,
+    input: &crate::image_io::ReadOptions,
 ) -> (Option<String>, Result<crate::image_io::LoadedImage, Error>) {
     if let Some(p) = &item.problem {
         return (None, Err(Error::decode(&item.source, p.clone())));
     }
-    let bytes = match crate::image_io::read_input(&item.source, &spec.input.limits) {
+    let bytes = match crate::image_io::read_input(&item.source, &input.limits) {
         Ok(b) => b,
         Err(e) => return (None, Err(e)),
     };
     let (sha, img) = rayon::join(
         || crate::digest::sha256_hex(&bytes),
-        || crate::image_io::decode_image(&bytes, &item.source, &spec.input),
+        || crate::image_io::decode_image(&bytes, &item.source, input),
     );
     (Some(sha), img)
 }

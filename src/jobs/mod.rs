@@ -22,6 +22,7 @@
 pub mod apply;
 pub mod borders;
 pub mod inputs;
+pub mod learn;
 pub mod manifest;
 pub mod merge;
 pub mod probe;

@@ -9,6 +9,11 @@
 //! normalize = { mean = [0.485, 0.456, 0.406], std = [0.229, 0.224, 0.225] }
 //!                                # optional: input normalisation per channel, applied
 //!                                # before the conv stage (learned banks)
+//! contrast = 0.000154            # optional: divide each response by sqrt(window
+//!                                # variance + this) before the bias (bank learn)
+//!
+//! [learned]                      # optional: where `bank learn` got the bank from;
+//!                                # kept and shown, never used to compute
 //!
 //! [[kernel]]                     # one table per output channel, in order
 //! name = "sobel-x"
@@ -47,6 +52,8 @@ struct FileIn {
     description: Option<String>,
     pad: Option<crate::border::PadMode>,
     normalize: Option<Spanned<NormalizeIn>>,
+    contrast: Option<Spanned<f64>>,
+    learned: Option<toml::Table>,
     #[serde(default)]
     kernel: Vec<Spanned<KernelIn>>,
 }
@@ -80,7 +87,11 @@ struct FileOut<'a> {
     pad: Option<crate::border::PadMode>,
     #[serde(skip_serializing_if = "Option::is_none")]
     normalize: Option<NormalizeIn>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    contrast: Option<f64>,
     kernel: Vec<KernelOut<'a>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    learned: Option<&'a toml::Table>,
 }
 
 #[derive(Serialize)]
@@ -230,6 +241,19 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
             .map_err(|e| at(span, e.problem()))?;
         normalize = Some(norm);
     }
+    let contrast = match file.contrast {
+        Some(c) => {
+            let v = *c.get_ref();
+            if !(v.is_finite() && v > 0.0) {
+                return Err(at(
+                    c.span(),
+                    format!("contrast {v} must be a finite number above 0"),
+                ));
+            }
+            Some(v)
+        }
+        None => None,
+    };
     // Banks that `bank import` wrote before bank files named their pad mode
     // say where they came from; they keep zero, what the network saw.
     let imported = file
@@ -245,6 +269,8 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
         description: file.description,
         kernels,
         normalize,
+        contrast,
+        provenance: file.learned.map(Box::new),
     };
     bank.validate().map_err(|e| err(e.problem()))?;
     Ok(bank)
@@ -292,7 +318,9 @@ pub fn bank_to_toml(bank: &Bank) -> Result<String, Error> {
             mean: n.mean.clone(),
             std: n.std.clone(),
         }),
+        contrast: bank.contrast,
         kernel,
+        learned: bank.provenance.as_deref(),
     };
     let body = toml::to_string(&out).map_err(|e| Error::bank(format!("cannot write bank: {e}")))?;
     Ok(format!("# tapmap bank file\n{body}"))

@@ -105,6 +105,8 @@ pub fn resolve_bank(arg: &str) -> Result<Bank, Error> {
     }
     let bank = Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: arg.to_string(),
         op,
@@ -154,6 +156,8 @@ pub fn bank_from_specs(specs: &[String], name: &str, op: Op) -> Result<Bank, Err
         .collect::<Result<Vec<_>, _>>()?;
     let bank = Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: name.to_string(),
         op,

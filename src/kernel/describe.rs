@@ -65,6 +65,31 @@ pub fn bank_details(bank: &Bank) -> String {
     if let Some(d) = &bank.description {
         let _ = writeln!(s, "  {d}");
     }
+    if let Some(eps) = bank.contrast {
+        let _ = writeln!(
+            s,
+            "  contrast: each response is divided by sqrt(variance of its window + {eps:.6e}) \
+             before the bias"
+        );
+    }
+    if let Some(p) = &bank.provenance {
+        let get = |k: &str| p.get(k).map_or_else(String::new, |v| v.to_string());
+        let _ = writeln!(
+            s,
+            "  learned: method {}, whiten {}, size {}, {} patches of {} positions, seed {}",
+            get("method"),
+            get("whiten"),
+            get("size"),
+            get("patches"),
+            get("positions"),
+            get("seed")
+        );
+        for key in ["explained_ratio", "cluster_sizes"] {
+            if let Some(v) = p.get(key) {
+                let _ = writeln!(s, "  {key}: {v}");
+            }
+        }
+    }
     for k in &bank.kernels {
         let origin = k
             .origin
@@ -187,6 +212,8 @@ pub fn bank_json(bank: &Bank) -> serde_json::Value {
         "op": bank.op.to_string(),
         "description": bank.description,
         "normalize": bank.normalize.as_ref().map(|n| json!({"mean": n.mean, "std": n.std})),
+        "contrast": bank.contrast,
+        "learned": bank.provenance.as_ref().map(|p| serde_json::to_value(p).unwrap_or_default()),
         "kernels": kernels,
     })
 }

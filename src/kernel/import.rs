@@ -179,6 +179,8 @@ pub fn import_bank(path: &Path, opts: &ImportOptions) -> Result<Bank, Error> {
         )),
         kernels,
         normalize,
+        contrast: None,
+        provenance: None,
     };
     bank.validate().map_err(|e| e.in_file(path))?;
     Ok(bank)

@@ -240,6 +240,14 @@ pub struct Bank {
     /// names one (imported weights: zero, what the network saw); `None`: the
     /// default for built-in and hand-written banks ([`crate::stage::DEFAULT_PAD`]).
     pub pad: Option<crate::border::PadMode>,
+    /// Patch contrast normalisation (learned banks, `bank learn`): every
+    /// response is divided by sqrt(v + ε), with v the variance of the input
+    /// samples its window reads (all channels together, population variance),
+    /// before the kernel's bias is added. `Some(ε)`, ε > 0, in the input's units.
+    pub contrast: Option<f64>,
+    /// Where a learned bank came from (`[learned]` in the bank file): kept as
+    /// written, shown by `bank show`, never used to compute.
+    pub provenance: Option<Box<toml::Table>>,
 }
 
 /// Per-channel input normalisation, in the [0, 1] units of the image reader.
@@ -308,6 +316,26 @@ impl Bank {
             n.validate(c0)
                 .map_err(|e| Error::bank(format!("bank '{}': {e}", self.name)))?;
         }
+        if let Some(eps) = self.contrast {
+            if !(eps.is_finite() && eps > 0.0 && eps <= f32::MAX as f64) {
+                return Err(Error::bank(format!(
+                    "bank '{}': contrast ε {eps} must be a finite number above 0",
+                    self.name
+                )));
+            }
+            let k0 = &self.kernels[0];
+            if let Some(k) = self
+                .kernels
+                .iter()
+                .find(|k| (k.rows, k.cols) != (k0.rows, k0.cols))
+            {
+                return Err(Error::bank(format!(
+                    "bank '{}': contrast normalisation reads one window for all kernels, but \
+                     '{}' is {}×{} and '{}' is {}×{}",
+                    self.name, k.name, k.rows, k.cols, k0.name, k0.rows, k0.cols
+                )));
+            }
+        }
         let mut names: Vec<&str> = self.kernels.iter().map(|k| k.name.as_str()).collect();
         names.sort_unstable();
         if let Some(w) = names.windows(2).find(|w| w[0] == w[1]) {
@@ -345,6 +373,10 @@ impl Bank {
             for v in n.mean.iter().chain(&n.std) {
                 h.update(v.to_le_bytes());
             }
+        }
+        if let Some(eps) = self.contrast {
+            h.update(b"contrast");
+            h.update(eps.to_le_bytes());
         }
         crate::digest::hex(&h.finalize())
     }

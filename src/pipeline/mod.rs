@@ -26,7 +26,9 @@ use crate::error::Error;
 use crate::geometry::ReceptiveField;
 use crate::kernel::Normalize;
 use crate::stage::{Activation, Pool, Recipe, RecipeSpec, Stage};
+use contrast::Contrast;
 
+mod contrast;
 mod sizes;
 pub use sizes::{sizes_json, sizes_table, StageSizes};
 
@@ -40,6 +42,8 @@ enum Step {
         /// The strategy the planner chose, once, when the plan was made.
         engine: Engine,
         normalize: Option<Normalize>,
+        /// Patch contrast normalisation (learned banks); such a stage is never fused.
+        contrast: Option<Box<Contrast>>,
         act: Option<Activation>,
         pool: Option<Pool>,
     },
@@ -144,7 +148,15 @@ impl Plan {
                     );
                     let padded = (shape.0, gr.padded(), gc.padded());
                     let out = (p.kernels.len(), p.out_height, p.out_width);
-                    peak = peak.max(stage_bytes(&[shape, padded, out])?);
+                    let contrast = Contrast::of(conv, shape).map_err(ctx)?.map(Box::new);
+                    let extra = contrast.as_ref().map_or(0, |c| c.extra_bytes());
+                    peak = peak.max(
+                        stage_bytes(&[shape, padded, out])?
+                            .checked_add(extra)
+                            .ok_or_else(|| {
+                                Error::limit("the recipe's buffers for this input overflow")
+                            })?,
+                    );
                     let row = StageSizes {
                         kind: "conv",
                         what,
@@ -161,6 +173,7 @@ impl Plan {
                         stage: Box::new(p),
                         engine: chosen,
                         normalize: conv.bank.normalize.clone(),
+                        contrast,
                         act: None,
                         pool: None,
                     });
@@ -299,6 +312,7 @@ impl Plan {
                     stage,
                     engine,
                     normalize,
+                    contrast,
                     act,
                     pool,
                 } => {
@@ -318,9 +332,14 @@ impl Plan {
                         .as_ref()
                         .or(cur.as_ref())
                         .map_or(input, |a| a.view());
-                    let y = match pool {
-                        Some(p) => run_pooled(stage, x, *engine, *act, p, bufs)?,
-                        None => run_prepared(stage, x, *engine, bufs)?,
+                    let y = match (pool, contrast) {
+                        (Some(p), _) => run_pooled(stage, x, *engine, *act, p, bufs)?,
+                        (None, Some(c)) => {
+                            let mut y = run_prepared(stage, x, *engine, bufs)?;
+                            c.apply(x, &mut y, bufs)?;
+                            y
+                        }
+                        (None, None) => run_prepared(stage, x, *engine, bufs)?,
                     };
                     if let Some(a) = normalized {
                         self.give_back(a);
@@ -425,6 +444,7 @@ fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
             stage,
             engine,
             normalize,
+            contrast: None,
             act: None,
             pool: None,
         } = step
@@ -446,6 +466,7 @@ fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
                     stage,
                     engine,
                     normalize,
+                    contrast: None,
                     act,
                     pool,
                 });
@@ -455,6 +476,7 @@ fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
                     stage,
                     engine,
                     normalize,
+                    contrast: None,
                     act: None,
                     pool: None,
                 });

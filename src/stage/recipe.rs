@@ -77,9 +77,12 @@ impl Recipe {
                     if c.bank.normalize.is_some() {
                         nonneg.iter_mut().for_each(|v| *v = false);
                     }
+                    // (y − b)/s + b is below 0 for y < b(1 − s), whatever y's sign.
+                    let contrast = c.bank.contrast.is_some();
                     let non_negative = |k: &crate::kernel::Kernel| {
                         k.scale >= 0.0
                             && k.bias >= 0.0
+                            && (!contrast || k.bias == 0.0)
                             && k.planes.iter().enumerate().all(|(ch, p)| {
                                 let input_ok = nonneg.get(ch).copied().unwrap_or(false);
                                 if input_ok {

@@ -74,6 +74,8 @@ fn hand_built_kernels_with_wrong_lengths_are_refused_before_any_work() {
             op: Op::Correlate,
             description: None,
             normalize: None,
+            contrast: None,
+            provenance: None,
             pad: None,
             kernels: vec![Kernel {
                 name: "k".into(),

@@ -32,6 +32,8 @@ fn family(spec: &str) -> Bank {
 fn taps(rows: &[Vec<f64>]) -> Bank {
     Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: "t".into(),
         op: Op::Correlate,

@@ -58,6 +58,8 @@ fn stage_of(case: &Case) -> ConvStage {
     ConvStage {
         bank: Bank {
             normalize: None,
+            contrast: None,
+            provenance: None,
             pad: None,
             name: "case".into(),
             op: Op::Correlate,
@@ -363,6 +365,8 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
         let stage = ConvStage {
             bank: Bank {
                 normalize: None,
+                contrast: None,
+                provenance: None,
                 pad: None,
                 name: "l".into(),
                 op: Op::Correlate,
@@ -498,6 +502,8 @@ fn every_strategy_is_bit_identical_for_any_thread_count() {
     let stage = ConvStage {
         bank: Bank {
             normalize: None,
+            contrast: None,
+            provenance: None,
             pad: None,
             name: "b".into(),
             op: Op::Convolve,

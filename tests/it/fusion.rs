@@ -19,6 +19,8 @@ fn input(c: usize, h: usize, w: usize) -> Array3<f32> {
 fn learned(n: usize, c: usize, k: usize) -> Bank {
     Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: "learned".into(),
         op: Op::Correlate,

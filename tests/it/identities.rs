@@ -15,6 +15,8 @@ fn stage(kernels: Vec<Kernel>, op: Op, pad: PadMode, extent: Extent) -> ConvStag
     ConvStage {
         bank: Bank {
             normalize: None,
+            contrast: None,
+            provenance: None,
             pad: None,
             name: "t".into(),
             op,

@@ -193,6 +193,8 @@ fn bank_files_round_trip_exactly() {
     ];
     banks.push(Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: "odd values".into(),
         op: Op::Convolve,
@@ -201,6 +203,8 @@ fn bank_files_round_trip_exactly() {
     });
     banks.push(Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: "three planes".into(),
         op: Op::Correlate,

@@ -489,6 +489,8 @@ fn drawn_taps_show_one_square_per_tap_in_the_right_colour() {
     );
     let bank = Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: "b".into(),
         op: Op::Correlate,

@@ -16,6 +16,8 @@ use tapmap::stage::{Pool, PoolKind, PoolWindow};
 fn one_kernel_bank(k: Kernel) -> Bank {
     Bank {
         normalize: None,
+        contrast: None,
+        provenance: None,
         pad: None,
         name: "t".into(),
         op: Op::Correlate,

@@ -56,7 +56,7 @@ pub(crate) fn process(cx: &ImageContext, item: &InputItem) -> Finished {
     let mut stats = Vec::new();
     let mut written: Vec<PathBuf> = Vec::new();
     let result = (|| -> Result<(), Error> {
-        let (sha, img) = crate::jobs::inputs::read_with_digest(item, cx.spec);
+        let (sha, img) = crate::jobs::inputs::read_with_digest(item, &cx.spec.input);
         row.sha256 = sha;
         let img = img?;
         row.meta = Some(img.meta.clone());

@@ -204,7 +204,7 @@ fn one_image(
 ) -> Result<ImageResult, Error> {
     let out = &job.out_dir;
     let path = item.rel_string();
-    let (digest, img) = crate::jobs::inputs::read_with_digest(item, &job.spec);
+    let (digest, img) = crate::jobs::inputs::read_with_digest(item, &job.spec.input);
     *sha = digest;
     let img = img?;
     let recipe = job.spec.recipe_for(&img.channel_names)?;

@@ -74,7 +74,7 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
     obs.begin(items.len());
     for_each_parallel(&items, job.jobs, &job.stop, |i, item| {
         let result = pool.install(|| -> Result<(), Error> {
-            let (sha, img) = crate::jobs::inputs::read_with_digest(item, &job.spec);
+            let (sha, img) = crate::jobs::inputs::read_with_digest(item, &job.spec.input);
             digests.lock().unwrap_or_else(|p| p.into_inner())[i] = sha;
             let img = img?;
             let plan = plans.get(&job.spec, &img.channel_names, img.data.dim(), job.engine)?;
