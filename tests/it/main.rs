@@ -6,6 +6,7 @@ mod common;
 
 mod api;
 mod bad_inputs;
+mod bank_learn;
 mod batch;
 mod borders;
 mod cli;
