@@ -327,7 +327,7 @@ fn zca_whitened_covariance_is_the_identity_to_the_epsilon_tolerance() {
         .copied()
         .fold(f64::INFINITY, f64::min);
     let bound = WHITEN_EPS / (smallest + WHITEN_EPS) + 1e-6;
-    let z = x.mapv(|v| v as f64) - &mean.view().insert_axis(ndarray::Axis(0));
+    let z = x.mapv(|v| v as f64) - mean.view().insert_axis(ndarray::Axis(0));
     let z = z.dot(&w);
     let zc = z.t().dot(&z) / (x.nrows() - 1) as f64;
     let mut worst: f64 = 0.0;
