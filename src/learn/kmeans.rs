@@ -211,42 +211,64 @@ fn start(x: ArrayView2<f32>, s: &Settings, rng: &mut Rng) -> Option<Array2<f32>>
             (made == k).then_some(c)
         }
         Kind::Lloyd => {
-            // k-means++: each next centroid is a sample drawn with probability
-            // proportional to its squared distance to the nearest one so far.
+            // Greedy k-means++: each next centroid is the best (lowest total
+            // squared distance) of 2 + ln k samples, each drawn with
+            // probability proportional to its squared distance to the nearest
+            // centroid so far (Arthur & Vassilvitskii 2007 §6 suggest the
+            // trials; scikit-learn's KMeans documents the same count; from memory).
+            let trials = 2 + (k as f64).ln() as usize;
             let first = rng.below(n as u64) as usize;
             c.row_mut(0).assign(&x.row(first));
-            let mut near: Vec<f64> = vec![f64::INFINITY; n];
+            let mut near = distances(x, x.row(first), None);
             for m in 1..k {
-                let prev = c.row(m - 1).to_owned();
-                near.par_chunks_mut(CHUNK).enumerate().for_each(|(b, dst)| {
-                    for (i, v) in dst.iter_mut().enumerate() {
-                        let row = x.row(b * CHUNK + i);
-                        let dist: f64 = row
-                            .iter()
-                            .zip(prev.iter())
-                            .map(|(a, b)| ((*a - *b) as f64).powi(2))
-                            .sum();
-                        *v = v.min(dist);
-                    }
-                });
                 let total: f64 = near.iter().sum();
                 if total <= 0.0 {
                     return None;
                 }
-                let mut target = rng.unit() * total;
-                let mut pick = n - 1;
-                for (i, v) in near.iter().enumerate() {
-                    if target < *v {
-                        pick = i;
-                        break;
+                let mut best: Option<(f64, usize, Vec<f64>)> = None;
+                for _ in 0..trials {
+                    let mut target = rng.unit() * total;
+                    let mut pick = n - 1;
+                    for (i, v) in near.iter().enumerate() {
+                        if target < *v {
+                            pick = i;
+                            break;
+                        }
+                        target -= v;
                     }
-                    target -= v;
+                    let cand = distances(x, x.row(pick), Some(&near));
+                    let pot: f64 = cand.iter().sum();
+                    if best.as_ref().map_or(true, |b| pot < b.0) {
+                        best = Some((pot, pick, cand));
+                    }
                 }
+                let (_, pick, cand) = best.expect("one trial at least");
                 c.row_mut(m).assign(&x.row(pick));
+                near = cand;
             }
             Some(c)
         }
     }
+}
+
+/// Squared distance of every row of `x` to `p`, the smaller of it and
+/// `near[i]` when given.
+fn distances(x: ArrayView2<f32>, p: ndarray::ArrayView1<f32>, near: Option<&[f64]>) -> Vec<f64> {
+    let n = x.nrows();
+    let mut out = vec![0.0f64; n];
+    out.par_chunks_mut(CHUNK).enumerate().for_each(|(b, dst)| {
+        for (i, v) in dst.iter_mut().enumerate() {
+            let at = b * CHUNK + i;
+            let dist: f64 = x
+                .row(at)
+                .iter()
+                .zip(p.iter())
+                .map(|(a, b)| ((*a - *b) as f64).powi(2))
+                .sum();
+            *v = near.map_or(dist, |nr| nr[at].min(dist));
+        }
+    });
+    out
 }
 
 /// Clusters the `n × d` row-major samples `data`; `progress(iteration,

@@ -440,7 +440,10 @@ fn the_bank_is_the_same_for_one_thread_or_two() {
     let a = without_command_line(&dir.path().join("k1.toml"));
     let b = without_command_line(&dir.path().join("k2.toml"));
     let first = a.lines().zip(b.lines()).find(|(x, y)| x != y);
-    assert!(a == b, "banks differ between --jobs 1 and --jobs 2: {first:?}");
+    assert!(
+        a == b,
+        "banks differ between --jobs 1 and --jobs 2: {first:?}"
+    );
 }
 
 /// The learned features at window (y, x) of a padded plane: taps · x' + bias,
