@@ -219,15 +219,7 @@ pub fn run_learn(
             seen.lock().unwrap_or_else(|p| p.into_inner())[i].1 = ph * pw;
             Ok(())
         });
-        if let Err(e) = result {
-            let e = e.in_file(&item.source);
-            obs.input_failed(&e);
-            failures
-                .lock()
-                .unwrap_or_else(|p| p.into_inner())
-                .push((i, e));
-        }
-        obs.advance();
+        crate::jobs::settle(obs, &failures, i, &item.source, result);
     });
     obs.end();
     let failures = failures.into_inner().unwrap_or_else(|p| p.into_inner());

@@ -163,6 +163,27 @@ pub trait Observer: Sync {
     fn end(&self) {}
 }
 
+/// Ends one input of a study job: a failure is named with its file, shown
+/// and kept (with the input's index) for the summary; either way the
+/// observer hears that one more input is done.
+pub fn settle(
+    obs: &dyn Observer,
+    failures: &std::sync::Mutex<Vec<(usize, Error)>>,
+    index: usize,
+    source: &std::path::Path,
+    result: Result<(), Error>,
+) {
+    if let Err(e) = result {
+        let e = e.in_file(source);
+        obs.input_failed(&e);
+        failures
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .push((index, e));
+    }
+    obs.advance();
+}
+
 /// An observer that shows nothing.
 pub struct Quiet;
 

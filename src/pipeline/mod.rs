@@ -137,14 +137,17 @@ impl Plan {
                     let (gr, gc) = (widest.geometry.rows, widest.geometry.cols);
                     let o = &conv.options;
                     let what = format!(
-                        "bank {} ({} kernels), {}, pad {}, extent {}, stride {}, dilation {}",
+                        "bank {} ({} kernels), {}, pad {}, extent {}, stride {}, dilation {}{}",
                         conv.bank.name,
                         conv.bank.kernels.len(),
                         conv.op(),
                         o.pad,
                         o.extent,
                         pair(o.stride),
-                        pair(o.dilation)
+                        pair(o.dilation),
+                        conv.bank
+                            .contrast
+                            .map_or(String::new(), |e| format!(", window contrast ε {e:.3e}"))
                     );
                     let padded = (shape.0, gr.padded(), gc.padded());
                     let out = (p.kernels.len(), p.out_height, p.out_width);

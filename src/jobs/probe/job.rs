@@ -118,15 +118,7 @@ pub fn run_probe(job: &ProbeJob, obs: &dyn Observer) -> Result<ProbeSummary, Err
             }
             Ok(())
         });
-        if let Err(e) = result {
-            let e = e.in_file(&item.source);
-            obs.input_failed(&e);
-            failures
-                .lock()
-                .unwrap_or_else(|p| p.into_inner())
-                .push((i, e));
-        }
-        obs.advance();
+        crate::jobs::settle(obs, &failures, i, &item.source, result);
     });
     obs.end();
     let failures = failures.into_inner().unwrap_or_else(|p| p.into_inner());
