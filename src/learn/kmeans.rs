@@ -220,55 +220,91 @@ fn start(x: ArrayView2<f32>, s: &Settings, rng: &mut Rng) -> Option<Array2<f32>>
             let first = rng.below(n as u64) as usize;
             c.row_mut(0).assign(&x.row(first));
             let mut near = distances(x, x.row(first), None);
+            let norms: Vec<f32> = x.outer_iter().map(|r| r.dot(&r)).collect();
             for m in 1..k {
                 let total: f64 = near.iter().sum();
                 if total <= 0.0 {
                     return None;
                 }
-                let mut best: Option<(f64, usize, Vec<f64>)> = None;
-                for _ in 0..trials {
-                    let mut target = rng.unit() * total;
-                    let mut pick = n - 1;
-                    for (i, v) in near.iter().enumerate() {
-                        if target < *v {
-                            pick = i;
-                            break;
+                let picks: Vec<usize> = (0..trials)
+                    .map(|_| {
+                        let mut target = rng.unit() * total;
+                        for (i, v) in near.iter().enumerate() {
+                            if target < *v {
+                                return i;
+                            }
+                            target -= v;
                         }
-                        target -= v;
-                    }
-                    let cand = distances(x, x.row(pick), Some(&near));
-                    let pot: f64 = cand.iter().sum();
-                    if best.as_ref().map_or(true, |b| pot < b.0) {
-                        best = Some((pot, pick, cand));
-                    }
+                        n - 1
+                    })
+                    .collect();
+                let mut cands = Array2::<f32>::zeros((trials, d));
+                for (t, &i) in picks.iter().enumerate() {
+                    cands.row_mut(t).assign(&x.row(i));
                 }
-                let (_, pick, cand) = best.expect("one trial at least");
-                c.row_mut(m).assign(&x.row(pick));
-                near = cand;
+                let pots = potentials(x, &norms, &cands, &near);
+                let best = (0..trials)
+                    .min_by(|&a, &b| pots[a].total_cmp(&pots[b]).then(a.cmp(&b)))
+                    .expect("one trial at least");
+                c.row_mut(m).assign(&x.row(picks[best]));
+                near = distances(x, x.row(picks[best]), Some(&near));
             }
             Some(c)
         }
     }
 }
 
-/// Squared distance of every row of `x` to `p`, the smaller of it and
-/// `near[i]` when given.
+/// Squared distance of every row of `x` (standard layout) to `p`, the
+/// smaller of it and `near[i]` when given: contiguous f32 rows, so the
+/// inner sum vectorises.
 fn distances(x: ArrayView2<f32>, p: ndarray::ArrayView1<f32>, near: Option<&[f64]>) -> Vec<f64> {
-    let n = x.nrows();
+    let (n, d) = x.dim();
+    let data = x.as_slice().expect("samples are standard layout");
+    let p = p.to_vec();
     let mut out = vec![0.0f64; n];
     out.par_chunks_mut(CHUNK).enumerate().for_each(|(b, dst)| {
         for (i, v) in dst.iter_mut().enumerate() {
             let at = b * CHUNK + i;
-            let dist: f64 = x
-                .row(at)
+            let row = &data[at * d..(at + 1) * d];
+            let dist = row
                 .iter()
-                .zip(p.iter())
-                .map(|(a, b)| ((*a - *b) as f64).powi(2))
-                .sum();
+                .zip(&p)
+                .map(|(a, b)| (a - b) * (a - b))
+                .sum::<f32>() as f64;
             *v = near.map_or(dist, |nr| nr[at].min(dist));
         }
     });
     out
+}
+
+/// The total of min(near, distance to each candidate) for every candidate
+/// row of `cands`, by one matrix product per chunk (‖x‖² − 2 x·c + ‖c‖²).
+fn potentials(x: ArrayView2<f32>, norms: &[f32], cands: &Array2<f32>, near: &[f64]) -> Vec<f64> {
+    let n = x.nrows();
+    let l = cands.nrows();
+    let c_norms: Vec<f32> = cands.outer_iter().map(|r| r.dot(&r)).collect();
+    let ct = cands.t();
+    let parts: Vec<Vec<f64>> = (0..n.div_ceil(CHUNK))
+        .into_par_iter()
+        .map(|b| {
+            let lo = b * CHUNK;
+            let hi = (lo + CHUNK).min(n);
+            let p = x.slice(ndarray::s![lo..hi, ..]).dot(&ct);
+            let mut pot = vec![0.0f64; l];
+            for (i, row) in p.outer_iter().enumerate() {
+                for (j, v) in row.iter().enumerate() {
+                    let dist = (norms[lo + i] - 2.0 * v + c_norms[j]).max(0.0) as f64;
+                    pot[j] += near[lo + i].min(dist);
+                }
+            }
+            pot
+        })
+        .collect();
+    let mut total = vec![0.0f64; l];
+    for p in parts {
+        total.iter_mut().zip(p).for_each(|(a, b)| *a += b);
+    }
+    total
 }
 
 /// Clusters the `n × d` row-major samples `data`; `progress(iteration,
