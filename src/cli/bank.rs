@@ -109,17 +109,6 @@ pub enum BankCommand {
     },
 }
 
-/// A bank file is someone's work: it is replaced only when asked.
-fn refuse_overwrite(out: &std::path::Path, force: bool) -> Result<(), Error> {
-    if !force && std::fs::symlink_metadata(out).is_ok() {
-        return Err(Error::usage(format!(
-            "{} exists; give --force to replace it, or another -o",
-            out.display()
-        )));
-    }
-    Ok(())
-}
-
 pub fn run(cmd: BankCommand) -> Result<i32, Error> {
     match cmd {
         BankCommand::Learn(a) => super::learn::run(*a),
@@ -153,7 +142,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
                     k.cols
                 );
             }
-            refuse_overwrite(&out, force)?;
+            tapmap::image_io::atomic::refuse_existing(&out, force)?;
             let text = bank_to_toml(&bank)?;
             tapmap::image_io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
             let k = &bank.kernels[0];
@@ -219,7 +208,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
                     .map_or_else(|| "bank".into(), |s| s.to_string_lossy().into_owned())
             });
             let bank = bank_from_specs(&specs, &name, op)?;
-            refuse_overwrite(&out, force)?;
+            tapmap::image_io::atomic::refuse_existing(&out, force)?;
             let text = bank_to_toml(&bank)?;
             tapmap::image_io::atomic::write_atomic(&out, |w| w.write_all(text.as_bytes()))?;
             say!("wrote {} ({} kernels)\n", out.display(), bank.kernels.len());

@@ -40,3 +40,15 @@ pub fn write_atomic(
     tmp.persist(path).map_err(|e| Error::io(path, e.error))?;
     Ok(())
 }
+
+/// Refuses to replace an existing file (a bank file is someone's work)
+/// unless `force`: checked before any work, so nothing is computed in vain.
+pub fn refuse_existing(out: &Path, force: bool) -> Result<(), Error> {
+    if !force && std::fs::symlink_metadata(out).is_ok() {
+        return Err(Error::usage(format!(
+            "{} exists; give --force to replace it, or another -o",
+            out.display()
+        )));
+    }
+    Ok(())
+}

@@ -119,12 +119,7 @@ fn check(job: &LearnJob) -> Result<(), Error> {
             job.out.display()
         )));
     }
-    if !job.force && std::fs::symlink_metadata(&job.out).is_ok() {
-        return Err(bad_usage(format!(
-            "{} exists; give --force to replace it, or another --out",
-            job.out.display()
-        )));
-    }
+    crate::image_io::atomic::refuse_existing(&job.out, job.force)?;
     if let Some(k) = &job.keep_patches {
         if !has_ext(k, "npy") {
             return Err(bad_usage(format!(
