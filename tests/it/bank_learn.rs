@@ -502,47 +502,57 @@ fn applying_a_learned_bank_gives_the_features_of_normalised_patches() {
             .sum();
         assert!((k.bias + tm).abs() < 1e-9, "{}: bias is −taps·μ", k.name);
     }
-    let out = dir.path().join("run");
-    let o = tapmap_command()
-        .args(["apply", "--bank"])
-        .arg(dir.path().join("k.toml"))
-        .args(["--save", "maps", "-q", "-o"])
-        .arg(&out)
-        .arg(inputs.join("tile-1.png"))
-        .output()
-        .unwrap();
-    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    let maps =
-        Array3::<f32>::read_npy(std::fs::File::open(out.join("maps/tile-1.npy")).unwrap()).unwrap();
-    let (img, h, w) = read_grey16(&inputs.join("tile-1.png"));
-    assert_eq!(maps.dim(), (4, h, w));
-    // Pad by 2 on every side, folding symmetrically, the way numpy.pad's
-    // 'symmetric' reads.
-    let pw = w + 4;
-    let padded: Vec<f64> = (0..(h + 4) * pw)
-        .map(|i| {
-            let sy = fold_index(PadMode::Symmetric, (i / pw) as i64 - 2, h as i64).unwrap();
-            let sx = fold_index(PadMode::Symmetric, (i % pw) as i64 - 2, w as i64).unwrap();
-            img[sy * w + sx]
-        })
-        .collect();
-    let mut worst: f64 = 0.0;
-    for (ki, k) in bank.kernels.iter().enumerate() {
-        for &(y, x) in &[
-            (0, 0),
-            (0, w - 1),
-            (h - 1, 3),
-            (1, 1),
-            (20, 33),
-            (h / 2, w / 2),
-            (h - 3, w - 2),
-        ] {
-            let want = feature(&padded, pw, y, x, k);
-            let got = maps[[ki, y, x]] as f64;
-            worst = worst.max((got - want).abs() / want.abs().max(1.0));
+    // Under the default (symmetric) and under zero padding, where the window
+    // variance is taken without the mean shift (the padded zeros stay zeros).
+    for (mode, name) in [(PadMode::Symmetric, "symmetric"), (PadMode::Zero, "zero")] {
+        let out = dir.path().join(format!("run-{name}"));
+        let o = tapmap_command()
+            .args(["apply", "--bank"])
+            .arg(dir.path().join("k.toml"))
+            .args(["--pad", name, "--save", "maps", "-q", "-o"])
+            .arg(&out)
+            .arg(inputs.join("tile-1.png"))
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let maps =
+            Array3::<f32>::read_npy(std::fs::File::open(out.join("maps/tile-1.npy")).unwrap())
+                .unwrap();
+        let (img, h, w) = read_grey16(&inputs.join("tile-1.png"));
+        assert_eq!(maps.dim(), (4, h, w));
+        // Pad by 2 on every side, folding the way numpy.pad's mode reads.
+        let pw = w + 4;
+        let padded: Vec<f64> = (0..(h + 4) * pw)
+            .map(|i| {
+                let sy = fold_index(mode, (i / pw) as i64 - 2, h as i64);
+                let sx = fold_index(mode, (i % pw) as i64 - 2, w as i64);
+                match (sy, sx) {
+                    (Some(sy), Some(sx)) => img[sy * w + sx],
+                    _ => 0.0,
+                }
+            })
+            .collect();
+        let mut worst: f64 = 0.0;
+        for (ki, k) in bank.kernels.iter().enumerate() {
+            for &(y, x) in &[
+                (0, 0),
+                (0, w - 1),
+                (h - 1, 3),
+                (1, 1),
+                (20, 33),
+                (h / 2, w / 2),
+                (h - 3, w - 2),
+            ] {
+                let want = feature(&padded, pw, y, x, k);
+                let got = maps[[ki, y, x]] as f64;
+                worst = worst.max((got - want).abs() / want.abs().max(1.0));
+            }
         }
+        assert!(
+            worst < 1e-4,
+            "{name}: maps differ from the features by {worst}"
+        );
     }
-    assert!(worst < 1e-4, "maps differ from the features by {worst}");
 }
 
 #[test]
