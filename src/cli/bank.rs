@@ -163,11 +163,7 @@ pub fn run(cmd: BankCommand) -> Result<i32, Error> {
             Ok(EXIT_OK)
         }
         BankCommand::Draw { bank, out, values } => {
-            let is_png = out
-                .extension()
-                .and_then(|e| e.to_str())
-                .is_some_and(|e| e.eq_ignore_ascii_case("png"));
-            if !is_png {
+            if !tapmap::jobs::inputs::has_extension(&out, "png") {
                 return Err(Error::usage(format!(
                     "bank draw writes PNG; give -o a name ending in .png (not {})",
                     out.display()

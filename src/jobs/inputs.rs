@@ -135,10 +135,15 @@ fn has_image_extension(p: &Path) -> bool {
         .is_some_and(|e| IMAGE_EXTENSIONS.iter().any(|x| x.eq_ignore_ascii_case(e)))
 }
 
-fn is_npy(p: &Path) -> bool {
+/// Whether `p` ends in `.ext`, in any case.
+pub fn has_extension(p: &Path, ext: &str) -> bool {
     p.extension()
         .and_then(|e| e.to_str())
-        .is_some_and(|e| e.eq_ignore_ascii_case("npy"))
+        .is_some_and(|e| e.eq_ignore_ascii_case(ext))
+}
+
+fn is_npy(p: &Path) -> bool {
+    has_extension(p, "npy")
 }
 
 fn is_pattern(s: &str) -> bool {

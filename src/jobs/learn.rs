@@ -17,7 +17,7 @@ use ndarray_npy::WriteNpyExt;
 use crate::error::Error;
 use crate::image_io::atomic::write_atomic;
 use crate::image_io::{ColorMode, ReadOptions};
-use crate::jobs::inputs::{expand_inputs, list_digest, read_with_digest};
+use crate::jobs::inputs::{expand_inputs, has_extension, list_digest, read_with_digest};
 use crate::jobs::{for_each_parallel, thread_pool, Observer, Stop};
 use crate::kernel::bankfile::bank_to_toml;
 use crate::kernel::{Bank, Kernel, Op};
@@ -77,60 +77,47 @@ pub struct LearnSummary {
     pub sheet: PathBuf,
 }
 
-fn bad_usage(m: String) -> Error {
-    Error::usage(m)
-}
-
-fn has_ext(p: &Path, ext: &str) -> bool {
-    p.extension()
-        .and_then(|e| e.to_str())
-        .is_some_and(|e| e.eq_ignore_ascii_case(ext))
-}
-
 /// Checks what can be checked before any image is read.
 fn check(job: &LearnJob) -> Result<(), Error> {
     let (r, c) = job.size;
     if r == 0 || c == 0 {
-        return Err(bad_usage("--size must be at least 1×1".into()));
+        return Err(Error::usage("--size must be at least 1×1"));
     }
     if job.patches < 2 {
-        return Err(bad_usage("--patches must be at least 2".into()));
+        return Err(Error::usage("--patches must be at least 2"));
     }
     if !(job.contrast_eps.is_finite() && job.contrast_eps > 0.0) {
-        return Err(bad_usage(
-            "--contrast-eps must be a finite number above 0".into(),
+        return Err(Error::usage(
+            "--contrast-eps must be a finite number above 0",
         ));
     }
     if !(job.settings.whiten_eps.is_finite() && job.settings.whiten_eps > 0.0) {
-        return Err(bad_usage(
-            "--whiten-eps must be a finite number above 0".into(),
-        ));
+        return Err(Error::usage("--whiten-eps must be a finite number above 0"));
     }
     if job.read.color == ColorMode::Split {
-        return Err(bad_usage(
+        return Err(Error::usage(
             "--color split makes one map per channel, not patches across channels; \
-             learn with luma or rgb"
-                .into(),
+             learn with luma or rgb",
         ));
     }
-    if !has_ext(&job.out, "toml") {
-        return Err(bad_usage(format!(
+    if !has_extension(&job.out, "toml") {
+        return Err(Error::usage(format!(
             "bank learn writes a bank file; give --out a name ending in .toml (not {})",
             job.out.display()
         )));
     }
     crate::image_io::atomic::refuse_existing(&job.out, job.force)?;
     if let Some(k) = &job.keep_patches {
-        if !has_ext(k, "npy") {
-            return Err(bad_usage(format!(
+        if !has_extension(k, "npy") {
+            return Err(Error::usage(format!(
                 "--keep-patches writes NumPy; give a name ending in .npy (not {})",
                 k.display()
             )));
         }
     }
     if let Some(s) = &job.sheet {
-        if !has_ext(s, "png") {
-            return Err(bad_usage(format!(
+        if !has_extension(s, "png") {
+            return Err(Error::usage(format!(
                 "--sheet writes PNG; give a name ending in .png (not {})",
                 s.display()
             )));
@@ -423,9 +410,7 @@ fn bank_of(
 /// matrix (float64, when one is used).
 fn write_kept(file: &Path, data: &[f32], d: usize, l: &Learned) -> Result<(), Error> {
     let npy = |e: ndarray_npy::WriteNpyError| std::io::Error::other(e.to_string());
-    let n = data.len() / d;
-    let a =
-        Array2::from_shape_vec((n, d), data.to_vec()).map_err(|e| Error::shape(e.to_string()))?;
+    let a = crate::learn::linalg::rows(data, d);
     write_atomic(file, |w| a.write_npy(w).map_err(npy))?;
     let (mean_file, white_file) = kept_names(file);
     let m = Array1::from(l.mean.clone());

@@ -244,12 +244,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
     let contrast = match file.contrast {
         Some(c) => {
             let v = *c.get_ref();
-            if !(v.is_finite() && v > 0.0) {
-                return Err(at(
-                    c.span(),
-                    format!("contrast {v} must be a finite number above 0"),
-                ));
-            }
+            crate::kernel::check_contrast(v).map_err(|e| at(c.span(), e.problem()))?;
             Some(v)
         }
         None => None,

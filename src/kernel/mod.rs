@@ -188,6 +188,16 @@ pub(crate) fn check_taps(label: &str, taps: &[f64], cols: usize) -> Result<(), E
     Ok(())
 }
 
+/// Checks a bank's contrast ε: finite, above 0, within float32's range.
+pub(crate) fn check_contrast(eps: f64) -> Result<(), Error> {
+    if !(eps.is_finite() && eps > 0.0 && eps <= f32::MAX as f64) {
+        return Err(Error::bank(format!(
+            "contrast {eps} must be a finite number above 0 (within float32's range)"
+        )));
+    }
+    Ok(())
+}
+
 /// Checks a kernel's scale or bias: finite and within float32's range.
 pub(crate) fn check_number(kernel: &str, field: &str, v: f64) -> Result<(), Error> {
     if !v.is_finite() {
@@ -317,12 +327,7 @@ impl Bank {
                 .map_err(|e| Error::bank(format!("bank '{}': {e}", self.name)))?;
         }
         if let Some(eps) = self.contrast {
-            if !(eps.is_finite() && eps > 0.0 && eps <= f32::MAX as f64) {
-                return Err(Error::bank(format!(
-                    "bank '{}': contrast ε {eps} must be a finite number above 0",
-                    self.name
-                )));
-            }
+            check_contrast(eps).map_err(|e| Error::bank(format!("bank '{}': {e}", self.name)))?;
             let k0 = &self.kernels[0];
             if let Some(k) = self
                 .kernels

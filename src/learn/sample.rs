@@ -161,20 +161,6 @@ impl Reservoir {
         }
     }
 
-    /// Patches held so far.
-    pub fn len(&self) -> usize {
-        self.held
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .heap
-            .len()
-    }
-
-    /// Whether nothing is held.
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
-    }
-
     /// The sample, in key order (the same for any thread count).
     pub fn into_drawn(self) -> Drawn {
         let held = self.held.into_inner().unwrap_or_else(|p| p.into_inner());
