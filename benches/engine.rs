@@ -93,6 +93,7 @@ fn bank_stage(
             scale: 1.0,
             bias: 0.0,
             origin: None,
+            angle: None,
         })
         .collect();
     ConvStage {

@@ -3,10 +3,10 @@
 //!
 //! Layers, each in its own module, lower ones first: [`error`], [`limits`],
 //! [`digest`], [`geometry`] (sizes, padding, receptive fields), [`border`] (pad
-//! modes), [`stats`] · [`kernel`] (kernels, banks, built-in families, bank
+//! modes), [`stats`], [`regions`] (components above a threshold, Otsu) · [`kernel`] (kernels, banks, built-in families, bank
 //! files, imported weights, analysis) · [`engine`] (what a conv stage computes
 //! and the planner; the strategies are private) · [`stage`] (act, pool,
-//! recipes) · [`pipeline`] (a plan per recipe and input shape) · [`image_io`]
+//! combine, thin, recipes) · [`pipeline`] (a plan per recipe and input shape) · [`image_io`]
 //! (image input, map output) · [`render`] (views, sheets) · [`jobs`] (apply,
 //! borders, probe, shard, merge). The command line is the `tapmap` binary,
 //! built on this library.
@@ -39,6 +39,7 @@ pub mod kernel;
 pub mod learn;
 pub mod limits;
 pub mod pipeline;
+pub mod regions;
 pub mod render;
 pub mod stage;
 pub mod stats;

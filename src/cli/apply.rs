@@ -6,7 +6,7 @@ use tapmap::error::Error;
 use tapmap::jobs::shard::{resolve, ShardSpec};
 use tapmap::jobs::{run_apply, ApplyJob, Save, Stop, ViewOptions};
 
-use super::args::{parse_depth, parse_finite, parse_range, thread_count, RunArgs, StageArgs};
+use super::args::{parse_depth, parse_range, thread_count, CombineArgs, RunArgs, StageArgs};
 use super::{command_line, status, watch_stop_signals, Terminal, EXIT_SOME_FAILED};
 
 pub const AFTER_HELP: &str = "Examples:\n  \
@@ -22,6 +22,8 @@ pub const AFTER_HELP: &str = "Examples:\n  \
 pub struct ApplyArgs {
     #[command(flatten)]
     stage: StageArgs,
+    #[command(flatten)]
+    combine: CombineArgs,
     #[command(flatten)]
     io: RunArgs,
     /// What to write, comma-separated: maps, tiff, views, sheets, stats, manifest, keys
@@ -39,9 +41,20 @@ pub struct ApplyArgs {
     /// larger files) or small (zlib level 6 with adaptive filters, tens of times slower).
     #[arg(long, default_value = "fast", value_name = "fast|small")]
     view_png: tapmap::render::ViewPng,
-    /// Threshold T for the above_fraction column of stats.csv (fraction of samples > T).
-    #[arg(long, value_name = "T", allow_hyphen_values = true, value_parser = parse_finite)]
-    threshold: Option<f32>,
+    /// Threshold for the edge measures of every map in stats.csv: above_fraction
+    /// (samples > T), components of those samples, and the largest one's area,
+    /// inclusive bounding box and centroid (drawn on sheets and keys). A number, or
+    /// otsu for each map's own Otsu level.
+    #[arg(long, value_name = "T|otsu", allow_hyphen_values = true)]
+    threshold: Option<tapmap::regions::Threshold>,
+    /// Pixels that join into one component: 8 (edges and corners) or 4 (edges only).
+    #[arg(long, default_value = "8", value_name = "8|4", requires = "threshold")]
+    connectivity: tapmap::regions::Connectivity,
+    /// Leave the N outermost rows and columns of every map out of the components
+    /// (a tile's or fixture's outline there is not a defect); above_fraction still
+    /// counts the whole map.
+    #[arg(long, default_value_t = 0, value_name = "N", requires = "threshold")]
+    measure_inset: usize,
     /// Images processed at once, and threads [default: all cores].
     #[arg(long, short = 'j', value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     jobs: Option<u32>,
@@ -62,7 +75,8 @@ pub struct ApplyArgs {
 }
 
 pub fn run(a: ApplyArgs) -> Result<i32, Error> {
-    let spec = a.stage.spec()?;
+    let mut spec = a.stage.spec()?;
+    a.combine.apply_to(&mut spec)?;
     let stop = Stop::new();
     let job = ApplyJob {
         spec,
@@ -76,6 +90,8 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
             png: a.view_png,
         },
         threshold: a.threshold,
+        connectivity: a.connectivity,
+        inset: a.measure_inset,
         jobs: thread_count(a.jobs),
         command_line: command_line(),
         shard: a

@@ -114,6 +114,91 @@ impl InputArgs {
     }
 }
 
+/// Combine flags: maps made from the first conv stage's maps (for the commands
+/// that run a whole recipe: apply and reckon).
+#[derive(Args, Clone, Default)]
+pub struct CombineArgs {
+    /// Add maps made from the first conv stage's maps, after them: magnitude, energy,
+    /// orientation, max, argmax, sum, mean (each over all its maps), or the sets
+    /// gradient (magnitude and orientation of the x/y pair, e.g. sobel-x and sobel-y)
+    /// and gabor-energy (energy per angle, the strongest and its angle); comma-separated.
+    #[arg(long, value_name = "KIND[,KIND...]", value_delimiter = ',')]
+    pub combine: Vec<tapmap::stage::CombineWhat>,
+    /// Add a thin-edge map (Canny: non-maximum suppression, then hysteresis between
+    /// LOW and HIGH in gradient-magnitude units) of the x/y pair of the first conv stage.
+    #[arg(long, value_name = "LOW,HIGH", value_parser = parse_low_high)]
+    pub thin: Option<(f64, f64)>,
+    /// Keep only the maps --combine and --thin make, not the conv maps they read.
+    #[arg(long)]
+    pub drop_sources: bool,
+}
+
+impl CombineArgs {
+    /// Adds the flags' combine stage right after the first conv stage of `spec`
+    /// and checks the recipe again.
+    pub fn apply_to(&self, spec: &mut RecipeSpec) -> Result<(), Error> {
+        use tapmap::stage::{Combine, CombineItem, CombineKind, CombineWhat, Stage};
+        let mut items: Vec<CombineItem> = self
+            .combine
+            .iter()
+            .cloned()
+            .map(CombineItem::of_all)
+            .collect();
+        if let Some((low, high)) = self.thin {
+            items.push(CombineItem::of_all(CombineWhat::Kind(CombineKind::Thin {
+                low,
+                high,
+            })));
+        }
+        if items.is_empty() {
+            if self.drop_sources {
+                return Err(Error::Usage(
+                    "--drop-sources goes with --combine or --thin".into(),
+                ));
+            }
+            return Ok(());
+        }
+        let Some(first) = spec
+            .recipe
+            .stages
+            .iter()
+            .position(|s| matches!(s, Stage::Conv(_)))
+        else {
+            return Err(Error::Usage(
+                "--combine and --thin read the first conv stage's maps, but the recipe has none"
+                    .into(),
+            ));
+        };
+        spec.recipe.stages.insert(
+            first + 1,
+            Stage::Combine(Combine {
+                items,
+                keep: !self.drop_sources,
+            }),
+        );
+        spec.validate()
+    }
+}
+
+/// `LOW,HIGH`: two finite numbers, 0 ≤ LOW ≤ HIGH.
+pub fn parse_low_high(s: &str) -> Result<(f64, f64), String> {
+    let (a, b) = s
+        .split_once(',')
+        .ok_or_else(|| format!("'{s}' is not LOW,HIGH"))?;
+    let num = |p: &str| {
+        p.trim()
+            .parse::<f64>()
+            .ok()
+            .filter(|v| v.is_finite())
+            .ok_or_else(|| format!("'{p}' is not a finite number"))
+    };
+    let (lo, hi) = (num(a)?, num(b)?);
+    if !(0.0 <= lo && lo <= hi) {
+        return Err(format!("thresholds {lo},{hi}: need 0 ≤ LOW ≤ HIGH"));
+    }
+    Ok((lo, hi))
+}
+
 /// Output folder, quietness and inputs: the same for every command that reads images.
 #[derive(Args)]
 pub struct RunArgs {

@@ -6,7 +6,7 @@ use clap::Args;
 use tapmap::error::Error;
 use tapmap::pipeline::Plan;
 
-use super::args::{parse_size, StageArgs};
+use super::args::{parse_size, CombineArgs, StageArgs};
 use super::EXIT_OK;
 
 pub const AFTER_HELP: &str = "Examples:\n  \
@@ -18,6 +18,8 @@ pub const AFTER_HELP: &str = "Examples:\n  \
 pub struct ReckonArgs {
     #[command(flatten)]
     stage: StageArgs,
+    #[command(flatten)]
+    combine: CombineArgs,
     /// Input size, WIDTHxHEIGHT.
     #[arg(long, value_parser = parse_size, value_name = "WxH")]
     size: (usize, usize),
@@ -27,7 +29,8 @@ pub struct ReckonArgs {
 }
 
 pub fn run(p: ReckonArgs) -> Result<i32, Error> {
-    let spec = p.stage.spec()?;
+    let mut spec = p.stage.spec()?;
+    p.combine.apply_to(&mut spec)?;
     let (w, h) = p.size;
     let channels = spec.input.color.bank_channels();
     let plan = Plan::new(&spec.recipe, (channels, h, w), p.stage.engine)?;

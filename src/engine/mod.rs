@@ -226,7 +226,7 @@ pub fn run_conv(
     let (c, h, w) = input.dim();
     let prepared = stage.prepare(c, h, w)?;
     let chosen = choose(&prepared, engine).engine;
-    run_prepared(&prepared, input.view(), chosen, &Buffers::new(0))
+    run_prepared(&prepared, input.view(), chosen, &Buffers::new(0), 0)
 }
 
 /// Runs a prepared stage over `input`, which must have the prepared shape,
@@ -236,6 +236,7 @@ pub(crate) fn run_prepared(
     input: ArrayView3<f32>,
     engine: Engine,
     bufs: &Buffers,
+    room: usize,
 ) -> Result<Array3<f32>, Error> {
     let (c, h, w) = input.dim();
     if (c, h, w) != (prepared.channels, prepared.height, prepared.width) {
@@ -245,8 +246,10 @@ pub(crate) fn run_prepared(
         )));
     }
     let len = prepared.output_len()?;
-    // Every strategy writes every output sample.
-    let mut out = bufs.scratch(len);
+    // Every strategy writes every output sample. `room` more samples of
+    // capacity let a combine append its maps without a copy.
+    let mut out = bufs.scratch(len + room);
+    out.truncate(len);
     let standard = input.as_standard_layout();
     let data = standard.as_slice().expect("standard layout is contiguous");
     run_strategy(engine, prepared, data, &mut out, bufs);

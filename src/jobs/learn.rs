@@ -380,6 +380,7 @@ fn bank_of(
             scale: 1.0,
             bias: *b,
             origin: None,
+            angle: None,
         })
         .collect();
     let bank = Bank {

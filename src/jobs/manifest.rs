@@ -84,8 +84,15 @@ pub struct JobRecord {
     pub recipe: RecipeRecord,
     /// Outputs chosen.
     pub save: String,
-    /// `--threshold`.
-    pub threshold: Option<f32>,
+    /// `--threshold`: a number, `otsu`, or none.
+    pub threshold: Option<crate::regions::Threshold>,
+    /// `--connectivity` of the edge measures.
+    #[serde(default)]
+    pub connectivity: crate::regions::Connectivity,
+    /// `--measure-inset`: rows and columns at each side of a map left out of
+    /// the components.
+    #[serde(default)]
+    pub inset: usize,
     /// How views map values to pixels.
     pub views: ViewsRecord,
 }
@@ -155,6 +162,49 @@ pub enum StageRecord {
         #[serde(default, skip_serializing_if = "Option::is_none")]
         stride: Option<[usize; 2]>,
     },
+    /// A combine stage.
+    Combine {
+        /// Its entries, in order.
+        combine: Vec<CombineRecord>,
+        /// Whether the maps before it stay.
+        keep: bool,
+    },
+    /// A thin-edge stage.
+    Thin {
+        /// `canny`.
+        thin: String,
+        /// The x and y maps, when named.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        of: Option<Vec<String>>,
+        /// Lower hysteresis threshold.
+        low: f64,
+        /// Upper hysteresis threshold.
+        high: f64,
+        /// The edge map's name, when given.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        name: Option<String>,
+        /// Whether the maps before it stay.
+        keep: bool,
+    },
+}
+
+/// One entry of a combine stage, as a recipe file gives it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CombineRecord {
+    /// Kind or built-in set (`magnitude`, `gradient`, …).
+    pub kind: String,
+    /// The maps read, when named (names, or indices as text).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub of: Option<Vec<String>>,
+    /// The output's name, when given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub name: Option<String>,
+    /// Weights of `weighted`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub weights: Option<Vec<f64>>,
+    /// What `argmax` gives: `index` or `angle`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub gives: Option<String>,
 }
 
 /// An extent by name, or explicit padding.
@@ -203,6 +253,15 @@ pub struct ViewsRecord {
     pub diverging_endpoints: [[u8; 3]; 2],
     /// Its 256 colours, index 0 first.
     pub diverging_table: Vec<[u8; 3]>,
+    /// The cyclic scale's inverse rule.
+    #[serde(default)]
+    pub cyclic: String,
+    /// How the cyclic scale was built.
+    #[serde(default)]
+    pub cyclic_method: String,
+    /// Its 256 colours, index 0 first.
+    #[serde(default)]
+    pub cyclic_table: Vec<[u8; 3]>,
 }
 
 /// Inputs, processed and failed.
@@ -365,6 +424,21 @@ pub fn recipe_record(spec: &RecipeSpec) -> RecipeRecord {
                 }
             }
             Stage::Act(a) => StageRecord::Act { act: a.to_string() },
+            Stage::Combine(c) => StageRecord::Combine {
+                combine: c.items.iter().map(combine_record).collect(),
+                keep: c.keep,
+            },
+            Stage::Thin(t) => StageRecord::Thin {
+                thin: "canny".into(),
+                of: t
+                    .of
+                    .as_ref()
+                    .map(|v| v.iter().map(ToString::to_string).collect()),
+                low: t.low,
+                high: t.high,
+                name: t.name.clone(),
+                keep: t.keep,
+            },
             Stage::Pool(p) => match p.window {
                 PoolWindow::Global => StageRecord::Pool {
                     pool: p.kind.to_string(),
@@ -394,6 +468,37 @@ pub fn recipe_record(spec: &RecipeSpec) -> RecipeRecord {
     }
 }
 
+fn combine_record(item: &crate::stage::CombineItem) -> CombineRecord {
+    use crate::stage::combine::{CombineKind, Gives, Preset};
+    use crate::stage::CombineWhat;
+    let (kind, weights, gives) = match &item.what {
+        CombineWhat::Kind(k) => (
+            k.name().to_string(),
+            match k {
+                CombineKind::Weighted(w) => Some(w.clone()),
+                _ => None,
+            },
+            match k {
+                CombineKind::Argmax(Gives::Index) => Some("index".to_string()),
+                CombineKind::Argmax(Gives::Angle) => Some("angle".to_string()),
+                _ => None,
+            },
+        ),
+        CombineWhat::Preset(Preset::Gradient) => ("gradient".into(), None, None),
+        CombineWhat::Preset(Preset::GaborEnergy) => ("gabor-energy".into(), None, None),
+    };
+    CombineRecord {
+        kind,
+        of: item
+            .of
+            .as_ref()
+            .map(|v| v.iter().map(ToString::to_string).collect()),
+        name: item.name.clone(),
+        weights,
+        gives,
+    }
+}
+
 /// The view rules of a run with `range` fixed (or per map).
 pub fn views_record(range: Option<(f32, f32)>, png: crate::render::ViewPng) -> ViewsRecord {
     ViewsRecord {
@@ -406,6 +511,14 @@ pub fn views_record(range: Option<(f32, f32)>, png: crate::render::ViewPng) -> V
         diverging_method: "Moreland 2009, Msh interpolation".into(),
         diverging_endpoints: [colormap::NEGATIVE, colormap::POSITIVE],
         diverging_table: colormap::table(),
+        cyclic: "table index i (0–255) stands for lo + i/256·(hi − lo); lo and hi are one \
+                 direction"
+            .into(),
+        cyclic_method: format!(
+            "straight lines in CIELAB round the anchors {:?}",
+            colormap::CYCLIC_ANCHORS
+        ),
+        cyclic_table: colormap::cyclic_table(),
     }
 }
 

@@ -116,6 +116,8 @@ pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Erro
                 Some("save")
             } else if f.job.threshold != m.job.threshold {
                 Some("threshold")
+            } else if f.job.connectivity != m.job.connectivity || f.job.inset != m.job.inset {
+                Some("connectivity")
             } else if f.job.views != m.job.views {
                 Some("views")
             } else {

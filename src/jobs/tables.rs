@@ -88,7 +88,7 @@ pub fn write_csv(
 }
 
 /// Column names of `stats.csv`.
-pub const STATS_COLUMNS: [&str; 16] = [
+pub const STATS_COLUMNS: [&str; 25] = [
     "path",
     "channel",
     "name",
@@ -105,6 +105,15 @@ pub const STATS_COLUMNS: [&str; 16] = [
     "above_fraction",
     "count",
     "non_finite",
+    "threshold",
+    "components",
+    "largest_area",
+    "largest_x0",
+    "largest_y0",
+    "largest_x1",
+    "largest_y1",
+    "largest_cx",
+    "largest_cy",
 ];
 
 /// One `stats.csv` row: one map of one image.
@@ -122,13 +131,16 @@ pub struct StatsRow {
     pub height: usize,
     /// The statistics.
     pub stats: MapStats,
+    /// The edge measures, with `--threshold`.
+    #[serde(default)]
+    pub regions: Option<crate::regions::Regions>,
 }
 
 impl StatsRow {
     /// The CSV fields, in [`STATS_COLUMNS`] order.
     pub fn fields(&self) -> Vec<String> {
         let m = &self.stats;
-        vec![
+        let mut row = vec![
             self.path.clone(),
             self.channel.to_string(),
             self.name.clone(),
@@ -145,7 +157,22 @@ impl StatsRow {
             optional_number(m.above_fraction),
             m.count.to_string(),
             m.non_finite.to_string(),
-        ]
+        ];
+        let g = self.regions.as_ref();
+        let l = g.and_then(|g| g.largest);
+        let whole = |v: Option<u64>| v.map_or_else(String::new, |v| v.to_string());
+        row.extend([
+            optional_number(g.map(|g| g.threshold)),
+            whole(g.map(|g| g.components)),
+            whole(g.map(|_| l.map_or(0, |l| l.area))),
+            whole(l.map(|l| u64::from(l.x0))),
+            whole(l.map(|l| u64::from(l.y0))),
+            whole(l.map(|l| u64::from(l.x1))),
+            whole(l.map(|l| u64::from(l.y1))),
+            optional_number(l.map(|l| l.cx)),
+            optional_number(l.map(|l| l.cy)),
+        ]);
+        row
     }
 }
 

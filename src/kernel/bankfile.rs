@@ -20,6 +20,8 @@
 //! taps = [[-1, 0, 1], [-2, 0, 2], [-1, 0, 1]]   # one plane, rows top to bottom
 //! scale = 1.0                    # optional, default 1
 //! bias = 0.0                     # optional, default 0
+//! angle = 0.0                    # optional: the orientation in degrees it stands for
+//!                                # (argmax combines report it; Gabor kernels: theta)
 //!
 //! [[kernel]]
 //! name = "colour-edge"
@@ -75,6 +77,7 @@ struct KernelIn {
     params: Option<BTreeMap<String, f64>>,
     scale: Option<Spanned<f64>>,
     bias: Option<Spanned<f64>>,
+    angle: Option<Spanned<f64>>,
 }
 
 #[derive(Serialize)]
@@ -107,6 +110,8 @@ struct KernelOut<'a> {
     planes: Option<Vec<Vec<Vec<f64>>>>,
     scale: f64,
     bias: f64,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    angle: Option<f64>,
 }
 
 /// 1-based line and column of a byte offset (bank and recipe files).
@@ -207,6 +212,7 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
                 scale: 1.0,
                 bias: 0.0,
                 origin: None,
+                angle: None,
             }
         } else {
             let spec = FamilySpec {
@@ -225,6 +231,11 @@ pub fn parse_bank(text: &str, origin: &Path) -> Result<Bank, Error> {
                     .map_err(|e| at(v.span(), e.problem()))?;
                 *target = *v.get_ref();
             }
+        }
+        if let Some(a) = k.angle {
+            crate::kernel::check_number(&kname, "angle", *a.get_ref())
+                .map_err(|e| at(a.span(), e.problem()))?;
+            kernel.angle = Some(*a.get_ref());
         }
         kernel.validate().map_err(|e| at(span, e.problem()))?;
         kernels.push(kernel);
@@ -301,6 +312,7 @@ pub fn bank_to_toml(bank: &Bank) -> Result<String, Error> {
                 planes,
                 scale: k.scale,
                 bias: k.bias,
+                angle: k.angle,
             }
         })
         .collect();

@@ -115,6 +115,7 @@ pub fn kernels_from(t: &Tensor, layout: Layout, path: &Path) -> Result<Vec<Kerne
             scale: 1.0,
             bias: 0.0,
             origin: None,
+            angle: None,
         })
         .collect())
 }

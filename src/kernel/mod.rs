@@ -84,9 +84,22 @@ pub struct Kernel {
     pub bias: f64,
     /// The built-in family and parameters this kernel was made from, if any.
     pub origin: Option<FamilySpec>,
+    /// The orientation in degrees the bank file declares for this kernel
+    /// (`angle = …`), if it does; see [`Kernel::declared_angle`].
+    pub angle: Option<f64>,
 }
 
 impl Kernel {
+    /// The orientation in degrees this kernel stands for: the bank file's
+    /// `angle`, else a Gabor family kernel's `theta` (default 0). What an
+    /// `argmax` combine with `gives = "angle"` reports.
+    pub fn declared_angle(&self) -> Option<f64> {
+        self.angle.or_else(|| {
+            let o = self.origin.as_ref().filter(|o| o.family == "gabor")?;
+            Some(o.params.get("theta").copied().unwrap_or(0.0))
+        })
+    }
+
     /// A one-plane kernel from row-major taps; checks shape and finiteness.
     pub fn from_rows(name: &str, rows: &[Vec<f64>]) -> Result<Kernel, Error> {
         let (r, c, plane) = plane_from_rows(name, rows)?;
@@ -98,6 +111,7 @@ impl Kernel {
             scale: 1.0,
             bias: 0.0,
             origin: None,
+            angle: None,
         })
     }
 
@@ -377,6 +391,14 @@ impl Bank {
             h.update(b"normalize");
             for v in n.mean.iter().chain(&n.std) {
                 h.update(v.to_le_bytes());
+            }
+        }
+        // Only declared angles enter, so banks without them keep their digests.
+        for (i, k) in self.kernels.iter().enumerate() {
+            if let Some(a) = k.angle {
+                h.update(b"angle");
+                h.update((i as u64).to_le_bytes());
+                h.update(a.to_le_bytes());
             }
         }
         if let Some(eps) = self.contrast {

@@ -65,6 +65,7 @@ impl Contrast {
                 scale: 1.0,
                 bias: 0.0,
                 origin: None,
+                angle: None,
             }],
             normalize: None,
             contrast: None,
@@ -110,12 +111,12 @@ impl Contrast {
             .zip(x.iter())
             .for_each(|(d, s)| *d = *s - shift);
         let shifted = Array3::from_shape_vec(x.dim(), v).expect("sized from the input");
-        let mean = run_prepared(&self.window, shifted.view(), self.engine, bufs)?;
+        let mean = run_prepared(&self.window, shifted.view(), self.engine, bufs, 0)?;
         let (raw, _) = shifted.into_raw_vec_and_offset();
         let mut sq = raw;
         sq.iter_mut().for_each(|s| *s *= *s);
         let squares = Array3::from_shape_vec(x.dim(), sq).expect("sized from the input");
-        let mean_sq = run_prepared(&self.window, squares.view(), self.engine, bufs)?;
+        let mean_sq = run_prepared(&self.window, squares.view(), self.engine, bufs, 0)?;
         bufs.give(squares.into_raw_vec_and_offset().0);
         let m = mean.as_slice().expect("standard layout");
         let q = mean_sq.as_slice().expect("standard layout");

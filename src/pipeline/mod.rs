@@ -25,9 +25,11 @@ use crate::engine::{choose, run_prepared, Engine};
 use crate::error::Error;
 use crate::geometry::ReceptiveField;
 use crate::kernel::Normalize;
+use crate::stage::combine::{MapInfo, ResolvedCombine};
 use crate::stage::{Activation, Pool, Recipe, RecipeSpec, Stage};
 use contrast::Contrast;
 
+pub mod combine;
 mod contrast;
 mod sizes;
 pub use sizes::{sizes_json, sizes_table, StageSizes};
@@ -46,9 +48,12 @@ enum Step {
         contrast: Option<Box<Contrast>>,
         act: Option<Activation>,
         pool: Option<Pool>,
+        /// Planes of room left after the maps for a combine that keeps them.
+        room: usize,
     },
     Act(Activation),
     Pool(Pool),
+    Combine(Box<ResolvedCombine>),
 }
 
 /// A recipe made ready for one input shape (see the module header).
@@ -60,6 +65,9 @@ pub struct Plan {
     steps: Vec<Step>,
     sizes: Vec<StageSizes>,
     fields: Vec<(ReceptiveField, ReceptiveField)>,
+    /// What is known of each output map (names, angles, cyclic ranges), for
+    /// an input of signed samples and of non-negative ones.
+    maps: [Vec<MapInfo>; 2],
     peak: u64,
     buffers: Buffers,
 }
@@ -105,8 +113,21 @@ impl Plan {
         let mut steps = Vec::with_capacity(recipe.stages.len());
         let mut sizes = Vec::with_capacity(recipe.stages.len());
         let mut peak = 0u64;
+        let inputs = |nonneg: bool| -> Vec<MapInfo> {
+            (0..input.0)
+                .map(|c| MapInfo::plain(format!("input{c}"), nonneg))
+                .collect()
+        };
+        let maps = [recipe.maps(inputs(false))?, recipe.maps(inputs(true))?];
+        // The maps before each stage, for combines that name them.
+        let mut before = inputs(false);
         for (i, stage) in recipe.stages.iter().enumerate() {
-            let ctx = |e: Error| e.within(&format!("stage {} ({})", i + 1, stage_kind(stage)));
+            let ctx = |e: Error| e.within(&format!("stage {} ({})", i + 1, stage.kind()));
+            let after = Recipe {
+                stages: vec![stage.clone()],
+            }
+            .maps(before.clone())
+            .map_err(ctx)?;
             let row = match stage {
                 Stage::Conv(conv) => {
                     let p = conv.prepare(shape.0, shape.1, shape.2).map_err(ctx)?;
@@ -179,6 +200,7 @@ impl Plan {
                         contrast,
                         act: None,
                         pool: None,
+                        room: 0,
                     });
                     row
                 }
@@ -220,9 +242,74 @@ impl Plan {
                         engine: None,
                     }
                 }
+                Stage::Combine(_) | Stage::Thin(_) => {
+                    let owned;
+                    let c = match stage {
+                        Stage::Combine(c) => c,
+                        Stage::Thin(t) => {
+                            owned = t.as_combine();
+                            &owned
+                        }
+                        _ => unreachable!("matched above"),
+                    };
+                    let (r, _) = c.resolve(&before).map_err(ctx)?;
+                    let out = (r.out_channels(), shape.1, shape.2);
+                    let mut new_fields = if r.keep { fields.clone() } else { Vec::new() };
+                    let mut work = fields.clone();
+                    let mut what = Vec::new();
+                    let mut operations = 0u128;
+                    for (o, info) in r
+                        .outputs
+                        .iter()
+                        .zip(&after[after.len() - r.outputs.len()..])
+                    {
+                        let f = o.sources.iter().fold(
+                            (ReceptiveField::default(), ReceptiveField::default()),
+                            |a, &s| (a.0.wider(work[s].0), a.1.wider(work[s].1)),
+                        );
+                        work.push(f);
+                        new_fields.push(f);
+                        let names: Vec<&str> = o
+                            .sources
+                            .iter()
+                            .map(|&s| name_at(&before, &after, &r, s))
+                            .collect();
+                        what.push(format!(
+                            "{} = {}({})",
+                            info.name,
+                            o.kind.label(),
+                            names.join(", ")
+                        ));
+                        operations += (o.sources.len() * shape.1 * shape.2) as u128;
+                    }
+                    fields = new_fields;
+                    peak = peak.max(stage_bytes(&[shape, out])?);
+                    let row = StageSizes {
+                        kind: stage.kind(),
+                        what: format!(
+                            "{}{}",
+                            what.join("; "),
+                            if r.keep {
+                                "; sources kept"
+                            } else {
+                                "; sources dropped"
+                            }
+                        ),
+                        input: shape,
+                        output: out,
+                        padding: None,
+                        field: widest_of(&fields),
+                        operations,
+                        unused: (0, 0),
+                        engine: None,
+                    };
+                    steps.push(Step::Combine(Box::new(r)));
+                    row
+                }
             };
             shape = row.output;
             sizes.push(row);
+            before = after;
         }
         if fuse {
             steps = fuse_steps(steps);
@@ -234,6 +321,7 @@ impl Plan {
             steps,
             sizes,
             fields,
+            maps,
             peak,
             buffers: Buffers::new(SPARE_BUFFERS),
         })
@@ -266,14 +354,22 @@ impl Plan {
 
     /// Names of the output channels (see [`Recipe::channel_names`]).
     pub fn channel_names(&self) -> Vec<String> {
-        self.recipe.channel_names(self.input.0)
+        self.maps[0].iter().map(|m| m.name.clone()).collect()
     }
 
     /// Which output channels are ≥ 0 by construction, for an input whose
     /// samples are all ≥ 0 (`input_non_negative`) or may be signed.
     pub fn non_negative(&self, input_non_negative: bool) -> Vec<bool> {
-        self.recipe
-            .non_negative_channels(vec![input_non_negative; self.input.0])
+        self.maps[usize::from(input_non_negative)]
+            .iter()
+            .map(|m| m.non_negative)
+            .collect()
+    }
+
+    /// For each output channel, the range (lo, hi) of the cyclic value it
+    /// holds (an orientation in degrees, lo and hi the same direction), if it holds one.
+    pub fn cyclic(&self) -> Vec<Option<(f64, f64)>> {
+        self.maps[0].iter().map(|m| m.cyclic).collect()
     }
 
     /// Bytes of f32 samples held at the busiest point of a run: one stage's
@@ -318,6 +414,7 @@ impl Plan {
                     contrast,
                     act,
                     pool,
+                    room,
                 } => {
                     let normalized = match normalize {
                         Some(n) => {
@@ -338,11 +435,14 @@ impl Plan {
                     let y = match (pool, contrast) {
                         (Some(p), _) => run_pooled(stage, x, *engine, *act, p, bufs)?,
                         (None, Some(c)) => {
-                            let mut y = run_prepared(stage, x, *engine, bufs)?;
+                            let mut y = run_prepared(stage, x, *engine, bufs, 0)?;
                             c.apply(x, &mut y, bufs)?;
                             y
                         }
-                        (None, None) => run_prepared(stage, x, *engine, bufs)?,
+                        (None, None) => {
+                            let plane = stage.out_height * stage.out_width;
+                            run_prepared(stage, x, *engine, bufs, room * plane)?
+                        }
                     };
                     if let Some(a) = normalized {
                         self.give_back(a);
@@ -362,6 +462,13 @@ impl Plan {
                     y
                 }
                 Step::Pool(p) => p.apply_in(cur.as_ref().map_or(input, |a| a.view()), bufs)?,
+                Step::Combine(r) => {
+                    let (y, spent) = combine::run_combine(r, cur.take(), input, bufs);
+                    if let Some(old) = spent {
+                        self.give_back(old);
+                    }
+                    y
+                }
             };
             // The stage's input is done with: its memory serves later buffers.
             if let Some(old) = cur.replace(next) {
@@ -438,11 +545,31 @@ impl PlanCache {
 }
 
 /// conv → pool and conv → act → pool become one fused conv step where the
-/// stage suits banding.
+/// stage suits banding; a conv step followed by a combine that keeps its maps
+/// leaves room after them for the combine's outputs.
 fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
     let mut out: Vec<Step> = Vec::with_capacity(steps.len());
     let mut it = steps.into_iter().peekable();
     while let Some(step) = it.next() {
+        if let (
+            Step::Conv {
+                pool: None,
+                contrast: None,
+                ..
+            },
+            Some(Step::Combine(r)),
+        ) = (&step, it.peek())
+        {
+            if r.keep {
+                let n = r.outputs.len();
+                let mut step = step;
+                if let Step::Conv { room, .. } = &mut step {
+                    *room = n;
+                }
+                out.push(step);
+                continue;
+            }
+        }
         let Step::Conv {
             stage,
             engine,
@@ -450,6 +577,7 @@ fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
             contrast: None,
             act: None,
             pool: None,
+            room,
         } = step
         else {
             out.push(step);
@@ -472,6 +600,7 @@ fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
                     contrast: None,
                     act,
                     pool,
+                    room,
                 });
             }
             _ => {
@@ -482,6 +611,7 @@ fn fuse_steps(steps: Vec<Step>) -> Vec<Step> {
                     contrast: None,
                     act: None,
                     pool: None,
+                    room,
                 });
                 out.extend(rest);
             }
@@ -512,11 +642,17 @@ fn widest_of(fields: &[(ReceptiveField, ReceptiveField)]) -> (ReceptiveField, Re
     )
 }
 
-fn stage_kind(s: &Stage) -> &'static str {
-    match s {
-        Stage::Conv(_) => "conv",
-        Stage::Act(_) => "act",
-        Stage::Pool(_) => "pool",
+/// The name of source `s` of a combine: an input map, or an output before.
+fn name_at<'a>(
+    before: &'a [MapInfo],
+    after: &'a [MapInfo],
+    r: &ResolvedCombine,
+    s: usize,
+) -> &'a str {
+    if s < r.inputs {
+        &before[s].name
+    } else {
+        &after[after.len() - r.outputs.len() + (s - r.inputs)].name
     }
 }
 

@@ -152,3 +152,35 @@ pub fn table() -> Vec<[u8; 3]> {
         })
         .collect()
 }
+
+/// Anchors of the cyclic scale for orientations (sRGB 8-bit), in order round
+/// the circle: kiln amber, glaze green, teal, slate violet, then back to amber.
+/// tapmap's own choice, of similar CIELAB lightness so that no direction
+/// stands out (common practice for cyclic scales, no source).
+pub const CYCLIC_ANCHORS: [[u8; 3]; 4] = [
+    [196, 112, 44],
+    [112, 150, 58],
+    [38, 132, 158],
+    [142, 96, 172],
+];
+
+/// The 8-bit table for cyclic views: entry i stands for the fraction i/256 of
+/// the way round, entry 0 for both ends; consecutive anchors are joined by
+/// straight lines in CIELAB, so the scale closes without a seam.
+pub fn cyclic_table() -> Vec<[u8; 3]> {
+    let lab: Vec<[f64; 3]> = CYCLIC_ANCHORS
+        .iter()
+        .map(|c| srgb_to_lab(c.map(|v| v as f64 / 255.0)))
+        .collect();
+    let n = lab.len();
+    (0..LEVELS)
+        .map(|i| {
+            let t = i as f64 / LEVELS as f64 * n as f64;
+            let k = (t.floor() as usize).min(n - 1);
+            let f = t - k as f64;
+            let (a, b) = (lab[k], lab[(k + 1) % n]);
+            let mixed = [0, 1, 2].map(|c| (1.0 - f) * a[c] + f * b[c]);
+            lab_to_srgb(mixed).map(|v| (v.clamp(0.0, 1.0) * 255.0).round() as u8)
+        })
+        .collect()
+}

@@ -77,8 +77,8 @@ impl std::fmt::Display for ViewPng {
     }
 }
 
-/// Writes a view as PNG, atomically: grey as 8- or 16-bit grey, diverging as
-/// 8-bit indexed colour with `table` as its palette.
+/// Writes a view as PNG, atomically: grey as 8- or 16-bit grey, diverging and
+/// cyclic as 8-bit indexed colour with `table` (that scale's) as its palette.
 pub fn write_view(
     path: &Path,
     v: &view::ViewImage,
@@ -86,10 +86,7 @@ pub fn write_view(
     png: ViewPng,
 ) -> Result<(), Error> {
     use ::png::{BitDepth, ColorType, DeflateCompression, Filter};
-    let (w, h) = match v {
-        view::ViewImage::Grey8(g) | view::ViewImage::Indexed(g) => g.dimensions(),
-        view::ViewImage::Grey16(g) => g.dimensions(),
-    };
+    let (w, h) = v.dimensions();
     write_atomic(path, |out| {
         let mut e = ::png::Encoder::new(out, w, h);
         match png {
@@ -117,7 +114,7 @@ pub fn write_view(
                 wide = g.as_raw().iter().flat_map(|v| v.to_be_bytes()).collect();
                 &wide
             }
-            view::ViewImage::Indexed(i) => {
+            view::ViewImage::Indexed(i) | view::ViewImage::Cyclic(i) => {
                 e.set_color(ColorType::Indexed);
                 e.set_depth(BitDepth::Eight);
                 palette = table.iter().flatten().copied().collect();
@@ -182,4 +179,23 @@ pub fn region_picture(
             image::Rgb([v, v, v])
         }
     })
+}
+
+/// The box drawn round the largest component on pictures for people: a
+/// bright line inside a dark one, one pixel each, so it shows on any scale.
+pub const BOX: [[u8; 3]; 2] = [[255, 236, 64], [20, 20, 20]];
+
+/// Draws the box round `l` (map pixels) on a picture shrunk by `factor`,
+/// one pixel outside the component, clipped to the picture.
+pub fn mark_box(img: &mut image::RgbImage, l: &crate::regions::Largest, factor: u32) {
+    use imageproc::drawing::draw_hollow_rect_mut;
+    use imageproc::rect::Rect;
+    let f = factor.max(1);
+    let (x0, y0) = ((l.x0 / f) as i32, (l.y0 / f) as i32);
+    let (x1, y1) = ((l.x1 / f) as i32, (l.y1 / f) as i32);
+    for (grow, colour) in [(1, BOX[0]), (2, BOX[1])] {
+        let (w, h) = (x1 - x0 + 1 + 2 * grow, y1 - y0 + 1 + 2 * grow);
+        let r = Rect::at(x0 - grow, y0 - grow).of_size(w as u32, h as u32);
+        draw_hollow_rect_mut(img, r, image::Rgb(colour));
+    }
 }

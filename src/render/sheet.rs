@@ -59,7 +59,8 @@ fn block_mean(img: &RgbImage, n: u32) -> RgbImage {
 }
 
 /// A colour key under a cell: the scale's colours from `lo` to `hi`, with the
-/// values at both ends (and 0 at the centre of a diverging scale) and the unit.
+/// values at both ends (and the middle value where one is given: 0 on a
+/// diverging scale, the middle direction on a cyclic one) and the unit.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Key<'a> {
     /// The diverging table for signed maps; `None` for the grey scale.
@@ -68,6 +69,8 @@ pub struct Key<'a> {
     pub lo: f64,
     /// Value at the right end.
     pub hi: f64,
+    /// The value written at the middle, if any.
+    pub middle: Option<f64>,
     /// What the values are: `response` for maps, `input` for input patches.
     pub unit: &'static str,
 }
@@ -123,9 +126,10 @@ fn draw_key(out: &mut RgbImage, x: u32, y: u32, width: u32, key: &Key) {
     draw_text(out, x, ny, &lo, INK);
     let hw = text_width(&hi);
     draw_text(out, (x + width).saturating_sub(hw), ny, &hi, INK);
-    if key.table.is_some() {
-        let zw = text_width("0");
-        draw_text(out, x + width / 2 - zw / 2, ny, "0", INK);
+    if let Some(m) = key.middle {
+        let text = short_number(m);
+        let zw = text_width(&text);
+        draw_text(out, (x + width / 2).saturating_sub(zw / 2), ny, &text, INK);
     }
     draw_text(out, x, ny + LINE, key.unit, INK);
 }

@@ -12,7 +12,13 @@
 //!   written as indexed PNG whose palette is the table (one byte a pixel, and
 //!   every decoder shows exactly the table's colours).
 //!
-//! `--view-range LO,HI` fixes lo and hi for every map. Non-finite samples are drawn
+//! - **Cyclic maps** (orientations in degrees) use the cyclic scale of
+//!   [`super::colormap::cyclic_table`], whose ends meet: table index i (0–255)
+//!   stands for v = lo + i/256·(hi − lo), lo and hi being one direction
+//!   (−180 and 180 for a gradient orientation, 0 and 180 for kernel angles).
+//!   Written as indexed PNG like signed views; `--view-range` does not change them.
+//!
+//! `--view-range LO,HI` fixes lo and hi for every other map. Non-finite samples are drawn
 //! as level 0 (grey) or the table's centre (signed).
 
 use image::{ImageBuffer, Luma, Rgb};
@@ -26,6 +32,8 @@ pub enum Scale {
     Grey,
     /// The diverging scale, zero at its centre.
     Diverging,
+    /// The cyclic scale: lo and hi are the same colour.
+    Cyclic,
 }
 
 /// The value-to-picture mapping of one view, as written to the manifest.
@@ -50,6 +58,8 @@ pub enum ViewImage {
     /// Indices into the diverging colour table (written as an indexed PNG whose
     /// palette is the table, so it decodes to exactly the table's colours).
     Indexed(ImageBuffer<Luma<u8>, Vec<u8>>),
+    /// Indices into the cyclic table, written the same way.
+    Cyclic(ImageBuffer<Luma<u8>, Vec<u8>>),
 }
 
 impl ViewImage {
@@ -58,10 +68,26 @@ impl ViewImage {
         match self {
             ViewImage::Grey8(g) => image::DynamicImage::ImageLuma8(g.clone()).to_rgb8(),
             ViewImage::Grey16(g) => image::DynamicImage::ImageLuma16(g.clone()).to_rgb8(),
-            ViewImage::Indexed(i) => ImageBuffer::from_fn(i.width(), i.height(), |x, y| {
-                Rgb(table[i.get_pixel(x, y)[0] as usize])
-            }),
+            ViewImage::Indexed(i) | ViewImage::Cyclic(i) => {
+                ImageBuffer::from_fn(i.width(), i.height(), |x, y| {
+                    Rgb(table[i.get_pixel(x, y)[0] as usize])
+                })
+            }
         }
+    }
+
+    /// Width and height.
+    pub fn dimensions(&self) -> (u32, u32) {
+        match self {
+            ViewImage::Grey8(g) | ViewImage::Indexed(g) | ViewImage::Cyclic(g) => g.dimensions(),
+            ViewImage::Grey16(g) => g.dimensions(),
+        }
+    }
+
+    /// The whole factor [`ViewImage::cell`] shrinks by (1: not shrunk).
+    pub fn cell_factor(&self) -> u32 {
+        let (w, h) = self.dimensions();
+        w.max(h).max(1).div_ceil(crate::render::sheet::MAX_CELL)
     }
 }
 
@@ -72,20 +98,34 @@ impl ViewImage {
     /// values, so the cell shows the blocks' mean values; averaging colours
     /// instead would mix a diverging scale's two hues into colours it does not
     /// hold.
+    /// A cyclic view's blocks take the circular mean of their indices, so
+    /// directions either side of the seam do not average to the opposite one.
     pub fn cell(&self, table: &[[u8; 3]]) -> ImageBuffer<Rgb<u8>, Vec<u8>> {
-        let (w, h) = match self {
-            ViewImage::Grey8(g) | ViewImage::Indexed(g) => g.dimensions(),
-            ViewImage::Grey16(g) => g.dimensions(),
-        };
-        let side = w.max(h).max(1);
-        let max = crate::render::sheet::MAX_CELL;
-        if side <= max {
+        let (w, h) = self.dimensions();
+        let n = self.cell_factor();
+        if n <= 1 {
             return self.to_rgb8(table);
         }
-        let n = side.div_ceil(max);
+        if let ViewImage::Cyclic(g) = self {
+            let step = std::f64::consts::TAU / 256.0;
+            return ImageBuffer::from_fn(w.div_ceil(n), h.div_ceil(n), |x, y| {
+                let (mut c, mut s) = (0.0f64, 0.0f64);
+                for yy in y * n..((y + 1) * n).min(h) {
+                    for xx in x * n..((x + 1) * n).min(w) {
+                        let a = f64::from(g.get_pixel(xx, yy)[0]) * step;
+                        c += a.cos();
+                        s += a.sin();
+                    }
+                }
+                let i = (s.atan2(c) / step).round().rem_euclid(256.0) as usize;
+                Rgb(table[i % 256])
+            });
+        }
         let level = |x: u32, y: u32| -> f64 {
             match self {
-                ViewImage::Grey8(g) | ViewImage::Indexed(g) => f64::from(g.get_pixel(x, y)[0]),
+                ViewImage::Grey8(g) | ViewImage::Indexed(g) | ViewImage::Cyclic(g) => {
+                    f64::from(g.get_pixel(x, y)[0])
+                }
                 ViewImage::Grey16(g) => f64::from(g.get_pixel(x, y)[0]) / 257.0,
             }
         };
@@ -171,6 +211,29 @@ pub fn mapping_from_extremes(
             hi,
             levels: if depth16 { 65535 } else { 255 },
         }
+    }
+}
+
+/// The mapping of a cyclic map whose period runs from `lo` to `hi`.
+pub fn cyclic_mapping(lo: f64, hi: f64) -> ViewMapping {
+    ViewMapping {
+        scale: Scale::Cyclic,
+        lo,
+        hi,
+        levels: 255,
+    }
+}
+
+/// Cyclic table indices: round((v − lo)/(hi − lo)·256) mod 256; non-finite
+/// samples take index 0.
+fn cyclic(values: &[f32], out: &mut [u8], lo: f64, hi: f64) {
+    let k = 256.0 / if hi > lo { hi - lo } else { 1.0 };
+    for (o, v) in out.iter_mut().zip(values) {
+        *o = if v.is_finite() {
+            ((*v as f64 - lo) * k).round().rem_euclid(256.0) as u32 as u8
+        } else {
+            0
+        };
     }
 }
 
@@ -342,6 +405,7 @@ pub fn levels_u8(values: &[f32], out: &mut [u8], m: &ViewMapping) {
                 m.levels as f64,
             ),
             Scale::Diverging => diverging(v, o, lo, hi),
+            Scale::Cyclic => cyclic(v, o, lo, hi),
         }
     }
 }
@@ -367,6 +431,7 @@ pub fn view_of(m: &ViewMapping, w: usize, h: usize, u8s: Vec<u8>, u16s: Vec<u16>
         (Scale::Diverging, _) => {
             ViewImage::Indexed(ImageBuffer::from_raw(wu, hu, u8s).expect("sized"))
         }
+        (Scale::Cyclic, _) => ViewImage::Cyclic(ImageBuffer::from_raw(wu, hu, u8s).expect("sized")),
     }
 }
 
@@ -467,7 +532,7 @@ mod tests {
         ] {
             let m = mapping(&values, signed, range, depth16);
             let got: Vec<u32> = match render(&values, 1, n, &m) {
-                ViewImage::Grey8(g) | ViewImage::Indexed(g) => {
+                ViewImage::Grey8(g) | ViewImage::Indexed(g) | ViewImage::Cyclic(g) => {
                     g.as_raw().iter().map(|&v| v as u32).collect()
                 }
                 ViewImage::Grey16(g) => g.as_raw().iter().map(|&v| v as u32).collect(),

@@ -5,6 +5,7 @@
 use crate::engine::ConvStage;
 use crate::error::Error;
 use crate::image_io::{ColorMode, ReadOptions};
+use crate::stage::combine::{Combine, MapInfo, MapRef, Thin};
 use crate::stage::{Activation, Pool};
 
 /// One step of a recipe.
@@ -16,6 +17,23 @@ pub enum Stage {
     Act(Activation),
     /// Max or mean pooling.
     Pool(Pool),
+    /// New maps made pixel by pixel from the maps before (magnitude, …).
+    Combine(Combine),
+    /// Thin edges from an x/y derivative pair (Canny).
+    Thin(Thin),
+}
+
+impl Stage {
+    /// The stage's kind, as recipe files name it.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            Stage::Conv(_) => "conv",
+            Stage::Act(_) => "act",
+            Stage::Pool(_) => "pool",
+            Stage::Combine(_) => "combine",
+            Stage::Thin(_) => "thin",
+        }
+    }
 }
 
 /// Stages in order.
@@ -50,33 +68,41 @@ impl Recipe {
         })
     }
 
-    /// Names of the output channels: the last conv stage's kernel names, or
-    /// `input` numbered when there is no conv stage.
+    /// Names of the output channels: the last conv stage's kernel names (and
+    /// the maps combine stages add), or `input` numbered when there is no conv stage.
     pub fn channel_names(&self, input_channels: usize) -> Vec<String> {
-        self.stages
-            .iter()
-            .rev()
-            .find_map(|s| match s {
-                Stage::Conv(c) => Some(c.bank.kernels.iter().map(|k| k.name.clone()).collect()),
-                _ => None,
-            })
-            .unwrap_or_else(|| (0..input_channels).map(|c| format!("input{c}")).collect())
+        let maps = self.maps(plain_inputs(&vec![false; input_channels]));
+        maps.map(|m| m.into_iter().map(|m| m.name).collect())
+            .unwrap_or_else(|_| (0..input_channels).map(|c| format!("input{c}")).collect())
     }
-}
 
-impl Recipe {
     /// Which output channels are ≥ 0 by construction, given which input channels
-    /// are. A conv channel is when its scale and bias are ≥ 0 and every plane is
+    /// are (see [`Recipe::maps`]).
+    pub fn non_negative_channels(&self, nonneg: Vec<bool>) -> Vec<bool> {
+        let n = nonneg.len();
+        match self.maps(plain_inputs(&nonneg)) {
+            Ok(m) => m.into_iter().map(|m| m.non_negative).collect(),
+            Err(_) => vec![false; n],
+        }
+    }
+
+    /// Walks the stages over maps described by `input`: names, declared
+    /// angles, sign and cyclic range of every map after each stage; fails where
+    /// a combine or thin stage names maps that are not there.
+    ///
+    /// A conv channel is ≥ 0 when its scale and bias are ≥ 0 and every plane is
     /// either all ≥ 0 over a non-negative input channel or all zero; relu, abs,
     /// square and sigmoid make every channel non-negative; other activations and
-    /// pooling keep what they are given.
-    pub fn non_negative_channels(&self, mut nonneg: Vec<bool>) -> Vec<bool> {
-        for stage in &self.stages {
+    /// pooling keep what they are given; combines say per kind
+    /// ([`crate::stage::combine`]).
+    pub fn maps(&self, input: Vec<MapInfo>) -> Result<Vec<MapInfo>, Error> {
+        let mut maps = input;
+        for (i, stage) in self.stages.iter().enumerate() {
+            let at = |e: Error| e.within(&format!("stage {} ({})", i + 1, stage.kind()));
             match stage {
                 Stage::Conv(c) => {
-                    if c.bank.normalize.is_some() {
-                        nonneg.iter_mut().for_each(|v| *v = false);
-                    }
+                    let nonneg: Vec<bool> = maps.iter().map(|m| m.non_negative).collect();
+                    let normalized = c.bank.normalize.is_some();
                     // (y − b)/s + b is below 0 for y < b(1 − s), whatever y's sign.
                     let contrast = c.bank.contrast.is_some();
                     let non_negative = |k: &crate::kernel::Kernel| {
@@ -84,7 +110,8 @@ impl Recipe {
                             && k.bias >= 0.0
                             && (!contrast || k.bias == 0.0)
                             && k.planes.iter().enumerate().all(|(ch, p)| {
-                                let input_ok = nonneg.get(ch).copied().unwrap_or(false);
+                                let input_ok =
+                                    !normalized && nonneg.get(ch).copied().unwrap_or(false);
                                 if input_ok {
                                     p.iter().all(|t| *t >= 0.0)
                                 } else {
@@ -92,13 +119,32 @@ impl Recipe {
                                 }
                             })
                     };
-                    nonneg = c.bank.kernels.iter().map(non_negative).collect();
+                    maps = c
+                        .bank
+                        .kernels
+                        .iter()
+                        .map(|k| MapInfo {
+                            name: k.name.clone(),
+                            angle: k.declared_angle(),
+                            non_negative: non_negative(k),
+                            cyclic: None,
+                        })
+                        .collect();
                 }
-                Stage::Act(a) if a.non_negative() => nonneg.iter_mut().for_each(|v| *v = true),
-                Stage::Act(_) | Stage::Pool(_) => {}
+                Stage::Act(a) => {
+                    for m in &mut maps {
+                        m.non_negative |= a.non_negative();
+                        if *a != Activation::None {
+                            m.cyclic = None;
+                        }
+                    }
+                }
+                Stage::Pool(_) => {}
+                Stage::Combine(c) => maps = c.resolve(&maps).map_err(at)?.1,
+                Stage::Thin(t) => maps = t.as_combine().resolve(&maps).map_err(at)?.1,
             }
         }
-        nonneg
+        Ok(maps)
     }
 
     /// The recipe for `split` colour mode over channels named `channels`: the
@@ -137,9 +183,74 @@ impl Recipe {
                 kernels.push(kc);
             }
         }
+        let per_channel: Vec<String> = conv.bank.kernels.iter().map(|k| k.name.clone()).collect();
         conv.bank.kernels = kernels;
+        let first = out
+            .stages
+            .iter()
+            .position(|s| matches!(s, Stage::Conv(_)))
+            .expect("found above");
+        for stage in out.stages.iter_mut().skip(first + 1) {
+            match stage {
+                Stage::Conv(_) => break,
+                Stage::Combine(c) => *c = combine_per_channel(c, &per_channel, channels)?,
+                Stage::Thin(_) => {
+                    return Err(Error::recipe(
+                        "colour mode split does not run a thin stage (it reads one x/y pair);                          use --color luma, or rgb with three-plane derivative kernels",
+                    ))
+                }
+                Stage::Act(_) | Stage::Pool(_) => {}
+            }
+        }
         Ok(out)
     }
+}
+
+/// Input maps described only by their sign, named `input0`, `input1`, ….
+fn plain_inputs(nonneg: &[bool]) -> Vec<MapInfo> {
+    nonneg
+        .iter()
+        .enumerate()
+        .map(|(c, &n)| MapInfo::plain(format!("input{c}"), n))
+        .collect()
+}
+
+/// A combine stage after the first conv stage in colour mode split: every
+/// entry once per channel, reading that channel's maps (`name@channel`), its
+/// outputs named `name@channel`.
+fn combine_per_channel(
+    c: &Combine,
+    kernels: &[String],
+    channels: &[String],
+) -> Result<Combine, Error> {
+    let mut items = Vec::with_capacity(c.items.len() * channels.len());
+    for ch in channels {
+        for item in &c.items {
+            let of = match &item.of {
+                None => kernels
+                    .iter()
+                    .map(|k| MapRef::Name(format!("{k}@{ch}")))
+                    .collect(),
+                Some(refs) => refs
+                    .iter()
+                    .map(|r| match r {
+                        MapRef::Name(n) => Ok(MapRef::Name(format!("{n}@{ch}"))),
+                        MapRef::Index(i) => Err(Error::recipe(format!(
+                            "in colour mode split a combine names its maps (index {i} was given),                              since each channel's maps are read apart"
+                        ))),
+                    })
+                    .collect::<Result<Vec<_>, _>>()?,
+            };
+            let mut it = item.clone();
+            it.of = Some(of);
+            it.channel = Some(ch.clone());
+            items.push(it);
+        }
+    }
+    Ok(Combine {
+        items,
+        keep: c.keep,
+    })
 }
 
 /// A recipe with its input handling: what a job runs.
@@ -215,6 +326,14 @@ impl RecipeSpec {
             per_channel = channels.is_none() && self.input.color == ColorMode::Split;
             channels = Some(conv.bank.kernels.len());
         }
+        // Combine and thin stages name maps: walk the recipe over the channels
+        // the colour mode gives a colour image (luma: one).
+        let names: Vec<String> = match self.input.color {
+            ColorMode::Luma => vec!["luma".into()],
+            ColorMode::Rgb | ColorMode::Split => ["r", "g", "b"].map(String::from).to_vec(),
+        };
+        let recipe = self.recipe_for(&names)?;
+        recipe.maps(plain_inputs(&vec![true; names.len()]))?;
         Ok(())
     }
 

@@ -24,10 +24,26 @@
 //! pool = "max"                  # max | mean
 //! size = 2                      # N, [rows, cols] or "global"
 //! stride = 2                    # default: the size
+//!
+//! [[stage]]
+//! combine = "gradient"          # or a list: ["magnitude", "orientation"]; kinds:
+//!                               # magnitude energy orientation max argmax sum mean
+//!                               # weighted; sets: gradient gabor-energy (see stage::combine)
+//! of = ["sobel-x", "sobel-y"]   # maps read, by name or index (default: all)
+//! name = "edge-strength"        # one kind only (default: the kind's name)
+//! keep = true                   # keep the maps read before the new ones (default true)
+//! # weights = [0.5, 0.5]        # weighted only, one per map of `of`
+//! # gives = "angle"             # argmax only: index (default) or angle
+//!
+//! [[stage]]
+//! thin = "canny"                # thin edges: non-maximum suppression + hysteresis
+//! low = 0.1                     # thresholds in gradient magnitude units
+//! high = 0.3
+//! # of = ["sobel-x", "sobel-y"] # the x/y pair (default: found by name)
 //! ```
 //!
-//! Each `[[stage]]` has exactly one of `conv`, `act`, `pool`. Unknown keys are refused
-//! with their line and column.
+//! Each `[[stage]]` has exactly one of `conv`, `act`, `pool`, `combine`, `thin`, and
+//! only that kind's keys. Unknown keys are refused with their line and column.
 
 use std::path::Path;
 
@@ -42,7 +58,11 @@ use crate::image_io::ReadOptions;
 use crate::kernel::bankfile::{line_col, toml_error};
 use crate::kernel::builtin::resolve_bank;
 use crate::kernel::Op;
-use crate::stage::{Activation, Pool, PoolKind, PoolWindow, Recipe, RecipeSpec, Stage};
+use crate::stage::combine::Gives;
+use crate::stage::{
+    Activation, Combine, CombineItem, CombineKind, CombineWhat, MapRef, Pool, PoolKind, PoolWindow,
+    Recipe, RecipeSpec, Stage, Thin,
+};
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -104,6 +124,155 @@ struct StageIn {
     slope: Option<f32>,
     pool: Option<String>,
     size: Option<PoolSizeIn>,
+    combine: Option<OneOrMany>,
+    of: Option<Vec<MapRefIn>>,
+    name: Option<String>,
+    keep: Option<bool>,
+    weights: Option<Vec<f64>>,
+    gives: Option<String>,
+    thin: Option<String>,
+    low: Option<f64>,
+    high: Option<f64>,
+}
+
+#[derive(Deserialize)]
+#[serde(untagged)]
+enum OneOrMany {
+    One(String),
+    Many(Vec<String>),
+}
+
+#[derive(Deserialize)]
+#[serde(untagged)]
+enum MapRefIn {
+    Index(usize),
+    Name(String),
+}
+
+impl StageIn {
+    /// The keys this table gives, by name.
+    fn given(&self) -> Vec<&'static str> {
+        let keys = [
+            ("conv", self.conv.is_some()),
+            ("op", self.op.is_some()),
+            ("pad", self.pad.is_some()),
+            ("extent", self.extent.is_some()),
+            ("pad_width", self.pad_width.is_some()),
+            ("stride", self.stride.is_some()),
+            ("dilation", self.dilation.is_some()),
+            ("act", self.act.is_some()),
+            ("slope", self.slope.is_some()),
+            ("pool", self.pool.is_some()),
+            ("size", self.size.is_some()),
+            ("combine", self.combine.is_some()),
+            ("of", self.of.is_some()),
+            ("name", self.name.is_some()),
+            ("keep", self.keep.is_some()),
+            ("weights", self.weights.is_some()),
+            ("gives", self.gives.is_some()),
+            ("thin", self.thin.is_some()),
+            ("low", self.low.is_some()),
+            ("high", self.high.is_some()),
+        ];
+        keys.iter().filter(|k| k.1).map(|k| k.0).collect()
+    }
+
+    /// Refuses keys outside `allowed` for a stage of `kind`.
+    fn only(&self, kind: &str, allowed: &[&str]) -> Result<(), String> {
+        let extra: Vec<&str> = self
+            .given()
+            .into_iter()
+            .filter(|k| !allowed.contains(k))
+            .collect();
+        if extra.is_empty() {
+            Ok(())
+        } else {
+            Err(format!(
+                "a {kind} stage takes only {}; {} belong(s) to other stages",
+                allowed.join(", "),
+                extra.join(", ")
+            ))
+        }
+    }
+
+    fn map_refs(&self) -> Option<Vec<MapRef>> {
+        self.of.as_ref().map(|v| {
+            v.iter()
+                .map(|r| match r {
+                    MapRefIn::Index(i) => MapRef::Index(*i),
+                    MapRefIn::Name(n) => MapRef::Name(n.clone()),
+                })
+                .collect()
+        })
+    }
+}
+
+/// A `[[stage]]` table with `combine = …`.
+fn combine_stage(s: &StageIn) -> Result<Stage, String> {
+    s.only(
+        "combine",
+        &["combine", "of", "name", "keep", "weights", "gives"],
+    )?;
+    let kinds = match s.combine.as_ref().expect("a combine stage") {
+        OneOrMany::One(k) => vec![k.clone()],
+        OneOrMany::Many(v) => v.clone(),
+    };
+    if kinds.is_empty() {
+        return Err("combine = [] names no kind".into());
+    }
+    if kinds.len() > 1 && s.name.is_some() {
+        return Err("name goes with one combine kind; give each its own stage to name them".into());
+    }
+    let mut items = Vec::with_capacity(kinds.len());
+    for k in &kinds {
+        let what = match (k.as_str(), &s.weights) {
+            ("weighted", Some(w)) => CombineWhat::Kind(CombineKind::Weighted(w.clone())),
+            ("weighted", None) => return Err("combine 'weighted' needs weights = [...]".into()),
+            (_, Some(_)) => return Err("weights go with combine = \"weighted\"".into()),
+            (other, None) => other.parse::<CombineWhat>()?,
+        };
+        let what = match (what, s.gives.as_deref()) {
+            (CombineWhat::Kind(CombineKind::Argmax(_)), Some("angle")) => {
+                CombineWhat::Kind(CombineKind::Argmax(Gives::Angle))
+            }
+            (w @ CombineWhat::Kind(CombineKind::Argmax(_)), None | Some("index")) => w,
+            (CombineWhat::Kind(CombineKind::Argmax(_)), Some(g)) => {
+                return Err(format!("gives '{g}': expected index or angle"))
+            }
+            (_, Some(_)) => return Err("gives goes with combine = \"argmax\"".into()),
+            (w, None) => w,
+        };
+        items.push(CombineItem {
+            what,
+            of: s.map_refs(),
+            name: s.name.clone(),
+            channel: None,
+        });
+    }
+    Ok(Stage::Combine(Combine {
+        items,
+        keep: s.keep.unwrap_or(true),
+    }))
+}
+
+/// A `[[stage]]` table with `thin = "canny"`.
+fn thin_stage(s: &StageIn) -> Result<Stage, String> {
+    s.only("thin", &["thin", "of", "name", "keep", "low", "high"])?;
+    match s.thin.as_deref() {
+        Some("canny") => {}
+        Some(o) => return Err(format!("thin '{o}': the one method is canny")),
+        None => unreachable!("a thin stage"),
+    }
+    let (Some(low), Some(high)) = (s.low, s.high) else {
+        return Err("a thin stage needs low and high thresholds (gradient magnitude units)".into());
+    };
+    Ok(Stage::Thin(Thin {
+        of: s.map_refs(),
+        low,
+        high,
+        name: s.name.clone(),
+        keep: s.keep.unwrap_or(true),
+    }))
 }
 
 /// Resolves a `conv = "…"` bank named in a recipe: a path relative to the
@@ -166,11 +335,36 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
         let place = Some(line_col(text, st.span().start));
         let at = |m: String| located(place, format!("stage {}: {m}", i + 1));
         let s = st.into_inner();
-        let kinds = [s.conv.is_some(), s.act.is_some(), s.pool.is_some()];
+        let kinds = [
+            s.conv.is_some(),
+            s.act.is_some(),
+            s.pool.is_some(),
+            s.combine.is_some(),
+            s.thin.is_some(),
+        ];
         if kinds.iter().filter(|k| **k).count() != 1 {
-            return Err(at("needs exactly one of conv, act or pool".into()));
+            return Err(at(
+                "needs exactly one of conv, act, pool, combine or thin".into()
+            ));
         }
-        let stage = if let Some(bank) = &s.conv {
+        let stage = if s.combine.is_some() {
+            combine_stage(&s).map_err(&at)?
+        } else if s.thin.is_some() {
+            thin_stage(&s).map_err(&at)?
+        } else if let Some(bank) = &s.conv {
+            s.only(
+                "conv",
+                &[
+                    "conv",
+                    "op",
+                    "pad",
+                    "extent",
+                    "pad_width",
+                    "stride",
+                    "dilation",
+                ],
+            )
+            .map_err(&at)?;
             if s.slope.is_some() || s.size.is_some() {
                 return Err(at("slope and size belong to act and pool stages".into()));
             }
@@ -239,8 +433,10 @@ pub fn parse_recipe(text: &str, origin: &Path) -> Result<RecipeSpec, Error> {
                 }
                 (name, None) => name.parse::<Activation>().map_err(&at)?,
             };
+            s.only("act", &["act", "slope"]).map_err(&at)?;
             Stage::Act(act)
         } else {
+            s.only("pool", &["pool", "size", "stride"]).map_err(&at)?;
             let kind: PoolKind = s.pool.as_deref().unwrap_or_default().parse().map_err(&at)?;
             if s.op.is_some()
                 || s.pad.is_some()

@@ -85,6 +85,7 @@ fn hand_built_kernels_with_wrong_lengths_are_refused_before_any_work() {
                 scale: 1.0,
                 bias: 0.0,
                 origin: None,
+                angle: None,
             }],
         },
         options: ConvOptions::default(),

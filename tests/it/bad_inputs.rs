@@ -1192,6 +1192,8 @@ fn file_deleted_after_listing_fails_alone() {
         save: "maps,views,stats,manifest".parse().unwrap(),
         view: Default::default(),
         threshold: None,
+        connectivity: tapmap::regions::Connectivity::Eight,
+        inset: 0,
         jobs: 2,
         command_line: Vec::new(),
         shard: None,

@@ -663,7 +663,9 @@ fn recipe_file_equals_its_stages_run_by_hand() {
         .arg(&recipe)
         .assert()
         .code(2)
-        .stderr(predicate::str::contains("exactly one of conv, act or pool"));
+        .stderr(predicate::str::contains(
+            "exactly one of conv, act, pool, combine or thin",
+        ));
 }
 
 #[test]

@@ -53,6 +53,7 @@ fn stage_of(case: &Case) -> ConvStage {
             scale: k.scale,
             bias: k.bias,
             origin: None,
+            angle: None,
         })
         .collect();
     ConvStage {
@@ -360,6 +361,7 @@ fn the_planner_chooses_by_the_bank_not_by_the_result() {
                 scale: 1.0,
                 bias: 0.0,
                 origin: None,
+                angle: None,
             })
             .collect();
         let stage = ConvStage {
@@ -498,6 +500,7 @@ fn every_strategy_is_bit_identical_for_any_thread_count() {
         scale: 0.7,
         bias: 0.1,
         origin: None,
+        angle: None,
     };
     let stage = ConvStage {
         bank: Bank {

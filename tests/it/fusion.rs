@@ -40,6 +40,7 @@ fn learned(n: usize, c: usize, k: usize) -> Bank {
                 scale: 1.0,
                 bias: 0.05 * i as f64,
                 origin: None,
+                angle: None,
             })
             .collect(),
     }

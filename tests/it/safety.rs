@@ -591,7 +591,7 @@ fn non_finite_option_values_are_refused() {
     expect(&o, 2, "--view-range 0,nan");
     // The library refuses it too.
     let mut job = tapmap::jobs::ApplyJob::new(edges_spec(), &out, vec![a.clone()]);
-    job.threshold = Some(f32::NAN);
+    job.threshold = Some(tapmap::regions::Threshold::Value(f32::NAN));
     assert!(job.check().is_err());
 }
 

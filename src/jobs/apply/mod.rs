@@ -44,6 +44,7 @@ use crate::jobs::tables::{write_tables, Finished};
 use crate::jobs::{
     for_each_parallel, make_out_dir, thread_pool, Observer, OutLock, Save, Stop, ViewOptions,
 };
+use crate::regions::{Connectivity, Threshold};
 use crate::render::colormap;
 use crate::stage::RecipeSpec;
 
@@ -66,8 +67,13 @@ pub struct ApplyJob {
     pub save: Save,
     /// How to draw views.
     pub view: ViewOptions,
-    /// Threshold for the `above_fraction` statistic.
-    pub threshold: Option<f32>,
+    /// Threshold of the `above_fraction` statistic and the edge measures
+    /// (components and the largest one) in `stats.csv`.
+    pub threshold: Option<Threshold>,
+    /// Which neighbours join pixels into one component.
+    pub connectivity: Connectivity,
+    /// Rows and columns at each side of a map left out of the components.
+    pub inset: usize,
     /// Threads of the job's pool, and images in flight at once.
     pub jobs: usize,
     /// The command line, for the manifest.
@@ -118,6 +124,8 @@ impl ApplyJob {
             save: Save::default(),
             view: ViewOptions::default(),
             threshold: None,
+            connectivity: Connectivity::Eight,
+            inset: 0,
             jobs: std::thread::available_parallelism().map_or(1, |n| n.get()),
             command_line: Vec::new(),
             shard: None,
@@ -130,7 +138,11 @@ impl ApplyJob {
     /// and option values (a threshold must be a finite number).
     pub fn check(&self) -> Result<(), Error> {
         self.spec.validate()?;
-        if self.threshold.is_some_and(|t| !t.is_finite()) {
+        if self
+            .threshold
+            .and_then(Threshold::value)
+            .is_some_and(|t| !t.is_finite())
+        {
             return Err(Error::usage("the threshold must be a finite number"));
         }
         Ok(())
@@ -151,6 +163,8 @@ impl ApplyJob {
             recipe: recipe_record(&self.spec),
             save: self.save.to_string(),
             threshold: self.threshold,
+            connectivity: self.connectivity,
+            inset: self.inset,
             views: views_record(self.view.range, self.view.png),
         }
     }
@@ -253,6 +267,7 @@ fn run_listed(
     let journal = journal::Journal::open(&dir, &key, job.resume)?;
 
     let table = colormap::table();
+    let cyclic_table = colormap::cyclic_table();
     let plans = PlanCache::default();
     let warnings = Mutex::new(std::collections::BTreeSet::new());
     let cx = ImageContext {
@@ -261,8 +276,11 @@ fn run_listed(
         save: job.save,
         view: job.view,
         threshold: job.threshold,
+        connectivity: job.connectivity,
+        inset: job.inset,
         dir: &dir,
         table: &table,
+        cyclic_table: &cyclic_table,
         plans: &plans,
         warnings: &warnings,
     };

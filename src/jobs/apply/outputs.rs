@@ -16,6 +16,7 @@ use crate::jobs::tables::{Finished, ImageRow, StatsRow};
 use crate::jobs::{safe_name, Save, ViewOptions};
 use crate::limits::bytes_text;
 use crate::pipeline::{Plan, PlanCache};
+use crate::regions::{regions, Connectivity, Regions, Threshold};
 use crate::render::{sheet, view, write_rgb, write_view};
 use crate::stage::RecipeSpec;
 use crate::stats::map_stats;
@@ -26,10 +27,14 @@ pub(crate) struct ImageContext<'a> {
     pub engine: Engine,
     pub save: Save,
     pub view: ViewOptions,
-    pub threshold: Option<f32>,
+    pub threshold: Option<Threshold>,
+    pub connectivity: Connectivity,
+    pub inset: usize,
     /// The run's folder.
     pub dir: &'a Path,
+    /// The diverging and cyclic colour tables.
     pub table: &'a [[u8; 3]],
+    pub cyclic_table: &'a [[u8; 3]],
     pub plans: &'a PlanCache,
     /// Warnings for the whole run, each said once.
     pub warnings: &'a std::sync::Mutex<std::collections::BTreeSet<String>>,
@@ -151,6 +156,11 @@ fn held_bytes(cx: &ImageContext, plan: &Plan, planes: usize) -> u64 {
     if cx.save.tiff {
         writing = writing.saturating_add(maps);
     }
+    if cx.threshold.is_some() {
+        // The runs of samples above the threshold: at most one per two
+        // samples, 12 bytes each, and their component roots.
+        writing = writing.saturating_add(per_map.saturating_mul(c as u64 * 8));
+    }
     (planes as u64)
         .saturating_mul(4)
         .saturating_add(plan.peak_bytes().max(writing))
@@ -182,6 +192,7 @@ struct MapOut<'a> {
     view: Option<(PathBuf, crate::render::view::ViewMapping)>,
     key: Option<PathBuf>,
     stats: Option<crate::stats::MapStats>,
+    regions: Option<Regions>,
     cell: Option<sheet::Cell<'a>>,
     error: Option<Error>,
 }
@@ -202,6 +213,8 @@ fn write_outputs(
     let (c, h, w) = maps.dim();
     let names = plan.channel_names();
     let nonneg = plan.non_negative(!img.meta.float);
+    let cyclic = plan.cyclic();
+    let given = cx.threshold.and_then(Threshold::value);
     let stem = item.stem_path();
     let data = maps.as_slice().expect("plans return standard layout");
     let plane = |k: usize| &data[k * h * w..(k + 1) * h * w];
@@ -235,12 +248,21 @@ fn write_outputs(
                 o.tiff = Some(p);
             }
             let (signed, range, deep) = (!nonneg[k], cx.view.range, cx.view.depth16);
+            let choose = |lo: Option<f64>, hi: Option<f64>| match cyclic[k] {
+                Some((a, b)) => view::cyclic_mapping(a, b),
+                None => view::mapping_from_extremes(lo, hi, signed, range, deep),
+            };
+            let table = if cyclic[k].is_some() {
+                cx.cyclic_table
+            } else {
+                cx.table
+            };
             let pic = if cx.save.stats && draw && crate::stats::takes_histograms(h * w) {
                 // One look at the map for the view's levels and the statistics'
                 // second pass, after the first pass found the extremes.
-                let first = crate::stats::FirstPass::of(plane(k), cx.threshold);
+                let first = crate::stats::FirstPass::of(plane(k), given);
                 let (lo, hi) = first.extremes();
-                let m = view::mapping_from_extremes(lo, hi, signed, range, deep);
+                let m = choose(lo, hi);
                 let (mut u8s, mut u16s) = (Vec::new(), Vec::new());
                 let stats = if m.levels > 255 {
                     u16s = vec![0u16; h * w];
@@ -253,28 +275,63 @@ fn write_outputs(
                 Some((view::view_of(&m, w, h, u8s, u16s), m))
             } else {
                 if cx.save.stats {
-                    o.stats = Some(map_stats(plane(k), cx.threshold));
+                    o.stats = Some(map_stats(plane(k), given));
                 }
                 draw.then(|| {
                     // The statistics found the extremes already, when they were asked for.
-                    let m = match &o.stats {
-                        Some(s) => view::mapping_from_extremes(s.min, s.max, signed, range, deep),
-                        None => view::mapping(plane(k), signed, range, deep),
+                    let m = match (&o.stats, cyclic[k]) {
+                        (Some(s), _) => choose(s.min, s.max),
+                        (None, Some(_)) => choose(None, None),
+                        (None, None) => view::mapping(plane(k), signed, range, deep),
                     };
                     (view::render(plane(k), h, w, &m), m)
                 })
             };
+            // Edge measures, for the table and for the box drawn on pictures.
+            if let Some(t) = cx
+                .threshold
+                .filter(|_| cx.save.stats || cx.save.sheets || cx.save.keys)
+            {
+                let g = measure(plane(k), (w, h), t, cx, o.stats.as_ref());
+                if let Some(s) = &mut o.stats {
+                    // With Otsu the level is known only now.
+                    s.above_fraction = Some(g.above as f64 / (h * w).max(1) as f64);
+                }
+                o.regions = Some(g);
+            }
             if let Some((pic, m)) = pic {
                 let key = sheet::Key {
-                    table: matches!(m.scale, view::Scale::Diverging).then_some(cx.table),
+                    table: matches!(m.scale, view::Scale::Diverging | view::Scale::Cyclic)
+                        .then_some(table),
                     lo: m.lo,
                     hi: m.hi,
-                    unit: "response",
+                    middle: match m.scale {
+                        view::Scale::Diverging => Some(0.0),
+                        view::Scale::Cyclic => Some((m.lo + m.hi) / 2.0),
+                        view::Scale::Grey => None,
+                    },
+                    unit: if m.scale == view::Scale::Cyclic {
+                        "degrees"
+                    } else {
+                        "response"
+                    },
+                };
+                let largest = o.regions.as_ref().and_then(|g| g.largest);
+                let picture = || {
+                    let mut p = pic.cell(table);
+                    if let Some(l) = &largest {
+                        crate::render::mark_box(&mut p, l, pic.cell_factor());
+                    }
+                    p
+                };
+                let boxed = |label: String| match &largest {
+                    Some(l) => format!("{label}; largest {} px", l.area),
+                    None => label,
                 };
                 if cx.save.keys {
                     let cell = sheet::Cell {
-                        label: format!("map {k:02}: {}", names[k]),
-                        picture: pic.cell(cx.table),
+                        label: boxed(format!("map {k:02}: {}", names[k])),
+                        picture: picture(),
                         key: Some(key),
                     };
                     let s = sheet::sheet_of(&item.rel_string(), &[cell], 1);
@@ -284,14 +341,14 @@ fn write_outputs(
                 }
                 if cx.save.sheets {
                     o.cell = Some(sheet::Cell {
-                        label: format!("{k:02} {}", names[k]),
-                        picture: pic.cell(cx.table),
+                        label: boxed(format!("{k:02} {}", names[k])),
+                        picture: picture(),
                         key: Some(key),
                     });
                 }
                 if cx.save.views {
                     let p = out.join("views").join(&stem).join(file_of(k, "png"));
-                    write_view(&p, &pic, cx.table, cx.view.png)?;
+                    write_view(&p, &pic, table, cx.view.png)?;
                     o.view = Some((p, m));
                 }
             }
@@ -363,6 +420,7 @@ fn write_outputs(
                 width: w,
                 height: h,
                 stats: s,
+                regions: o.regions,
             });
         }
         if let Some((p, mapping)) = o.view {
@@ -384,6 +442,34 @@ fn write_outputs(
         record(&p, entry)?;
     }
     Ok(())
+}
+
+/// The edge measures of one map at `t` (Otsu's level found from the map's
+/// extremes, taken from its statistics when they are there).
+fn measure(
+    values: &[f32],
+    (w, h): (usize, usize),
+    t: Threshold,
+    cx: &ImageContext,
+    stats: Option<&crate::stats::MapStats>,
+) -> Regions {
+    let level = match t {
+        Threshold::Value(v) => v,
+        Threshold::Otsu => {
+            let (lo, hi) = match stats {
+                Some(s) => (s.min, s.max),
+                None => {
+                    let s = map_stats(values, None);
+                    (s.min, s.max)
+                }
+            };
+            match (lo, hi) {
+                (Some(lo), Some(hi)) => crate::regions::otsu(values, lo, hi) as f32,
+                _ => 0.0,
+            }
+        }
+    };
+    regions(values, w, h, level, cx.connectivity, cx.inset)
 }
 
 /// A path with `/` separators, for the manifest, without loss

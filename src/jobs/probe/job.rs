@@ -261,6 +261,7 @@ fn write_results(
                     table: None,
                     lo: f64::from(h.shown.0),
                     hi: f64::from(h.shown.1),
+                    middle: None,
                     unit: "input",
                 }),
             })
@@ -300,6 +301,7 @@ fn write_results(
                         table: Some(&taps),
                         lo: -m,
                         hi: m,
+                        middle: Some(0.0),
                         unit: "tap",
                     }),
                 }

@@ -1,0 +1,309 @@
+//! Running combine and thin stages over whole maps (the definitions are in
+//! [`crate::stage::combine`]).
+//!
+//! A combine that keeps its input maps writes its outputs into the same buffer,
+//! after them: the conv step before it leaves room for them (see
+//! `Plan::build`), so the conv maps are neither copied nor read twice, and each
+//! output is one parallel pass over its sources (thin edges: a few passes
+//! over the whole plane).
+
+use ndarray::{Array3, ArrayView3};
+use rayon::prelude::*;
+
+use crate::engine::buffers::Buffers;
+use crate::regions::{label, Connectivity};
+use crate::stage::combine::{CombineKind, Gives, Resolved, ResolvedCombine};
+
+/// Samples per parallel chunk of one output.
+const CHUNK: usize = 1 << 14;
+
+/// The combine's maps: `maps` (owned, standard layout) or the caller's input.
+/// Gives the new maps; `maps`' memory is reused when the inputs are kept.
+pub(crate) fn run_combine(
+    r: &ResolvedCombine,
+    maps: Option<Array3<f32>>,
+    input: ArrayView3<f32>,
+    bufs: &Buffers,
+) -> (Array3<f32>, Option<Array3<f32>>) {
+    let (c, h, w) = maps.as_ref().map_or(input.dim(), |m| m.dim());
+    debug_assert_eq!(c, r.inputs);
+    let plane = h * w;
+    let n_out = r.outputs.len();
+    if r.keep {
+        let mut v = match maps {
+            // The conv step's own buffer, with room left after its maps.
+            Some(m) if m.is_standard_layout() => {
+                let (mut v, offset) = m.into_raw_vec_and_offset();
+                if let Some(o) = offset.filter(|o| *o > 0) {
+                    v.drain(..o);
+                }
+                v.truncate(c * plane);
+                v
+            }
+            other => {
+                let x = other.as_ref().map_or(input, |m| m.view());
+                let mut v = bufs.take((c + n_out) * plane);
+                v.clear();
+                v.extend(x.iter());
+                v
+            }
+        };
+        v.resize((c + n_out) * plane, 0.0);
+        let (ins, outs) = v.split_at_mut(c * plane);
+        fill(&r.outputs, ins, outs, plane, w);
+        let a = Array3::from_shape_vec((c + n_out, h, w), v).expect("sized above");
+        (a, None)
+    } else {
+        let mut out = bufs.scratch(n_out * plane);
+        {
+            let x = maps.as_ref().map_or(input, |m| m.view());
+            let standard = x.as_standard_layout();
+            let ins = standard.as_slice().expect("standard layout");
+            fill(&r.outputs, ins, &mut out, plane, w);
+        }
+        let a = Array3::from_shape_vec((n_out, h, w), out).expect("sized above");
+        (a, maps)
+    }
+}
+
+/// Computes every output in order into `outs`; sources are input planes
+/// (`ins`) or outputs written before.
+fn fill(ops: &[Resolved], ins: &[f32], outs: &mut [f32], plane: usize, width: usize) {
+    let n_in = ins.len() / plane.max(1);
+    for (j, op) in ops.iter().enumerate() {
+        let (done, rest) = outs.split_at_mut(j * plane);
+        let done: &[f32] = done;
+        let src: Vec<&[f32]> = op
+            .sources
+            .iter()
+            .map(|&s| {
+                if s < n_in {
+                    &ins[s * plane..(s + 1) * plane]
+                } else {
+                    &done[(s - n_in) * plane..(s - n_in + 1) * plane]
+                }
+            })
+            .collect();
+        let dst = &mut rest[..plane];
+        if let CombineKind::Thin { low, high } = op.kind {
+            // Needs neighbours, and hysteresis the whole plane: not by chunks.
+            let edges = thin_edges(
+                src[0],
+                src[1],
+                width,
+                plane / width.max(1),
+                low as f32,
+                high as f32,
+            );
+            dst.par_iter_mut()
+                .zip(&edges)
+                .for_each(|(d, e)| *d = f32::from(u8::from(*e)));
+            continue;
+        }
+        dst.par_chunks_mut(CHUNK).enumerate().for_each(|(ci, d)| {
+            let at = ci * CHUNK;
+            let s: Vec<&[f32]> = src.iter().map(|p| &p[at..at + d.len()]).collect();
+            one_chunk(op, &s, d);
+        });
+    }
+}
+
+/// One output over one chunk.
+fn one_chunk(op: &Resolved, src: &[&[f32]], d: &mut [f32]) {
+    match &op.kind {
+        CombineKind::Magnitude | CombineKind::Energy => {
+            let root = op.kind == CombineKind::Magnitude;
+            if let [a, b] = src {
+                // The common case, a derivative pair, in one pass.
+                for ((o, x), y) in d.iter_mut().zip(*a).zip(*b) {
+                    let e = (*x as f64) * (*x as f64) + (*y as f64) * (*y as f64);
+                    *o = if root { e.sqrt() } else { e } as f32;
+                }
+            } else {
+                let acc = weighted_sum(src, None, true);
+                for (o, e) in d.iter_mut().zip(acc) {
+                    *o = if root { e.sqrt() } else { e } as f32;
+                }
+            }
+        }
+        CombineKind::Orientation => {
+            let (x, y) = (src[0], src[1]);
+            for ((o, x), y) in d.iter_mut().zip(x).zip(y) {
+                *o = orientation(*x, *y);
+            }
+        }
+        CombineKind::Max => {
+            d.copy_from_slice(src[0]);
+            for s in &src[1..] {
+                for (o, v) in d.iter_mut().zip(*s) {
+                    if *v > *o {
+                        *o = *v;
+                    }
+                }
+            }
+        }
+        CombineKind::Argmax(gives) => {
+            let mut best: Vec<f32> = src[0].to_vec();
+            let value = |i: usize| match gives {
+                Gives::Index => i as f32,
+                Gives::Angle => op.angles[i],
+            };
+            d.fill(value(0));
+            for (i, s) in src.iter().enumerate().skip(1) {
+                let v_i = value(i);
+                for ((o, b), v) in d.iter_mut().zip(&mut best).zip(*s) {
+                    if *v > *b {
+                        *b = *v;
+                        *o = v_i;
+                    }
+                }
+            }
+        }
+        CombineKind::Sum | CombineKind::Mean => {
+            let n = if op.kind == CombineKind::Mean {
+                src.len() as f64
+            } else {
+                1.0
+            };
+            for (o, e) in d.iter_mut().zip(weighted_sum(src, None, false)) {
+                *o = (e / n) as f32;
+            }
+        }
+        CombineKind::Weighted(w) => {
+            for (o, e) in d.iter_mut().zip(weighted_sum(src, Some(w), false)) {
+                *o = e as f32;
+            }
+        }
+        CombineKind::Thin { .. } => unreachable!("thin runs over whole planes"),
+    }
+}
+
+/// Σ wᵢ·xᵢ (or Σ xᵢ² with `square`) in f64, per sample of the chunk.
+fn weighted_sum(src: &[&[f32]], w: Option<&[f64]>, square: bool) -> Vec<f64> {
+    let mut acc = vec![0f64; src[0].len()];
+    for (i, s) in src.iter().enumerate() {
+        let wi = w.map_or(1.0, |w| w[i]);
+        for (a, v) in acc.iter_mut().zip(*s) {
+            let v = *v as f64;
+            *a += if square { v * v } else { wi * v };
+        }
+    }
+    acc
+}
+
+/// atan2(y, x) in degrees, in (−180, 180] (−180 is written 180, −0 as 0).
+#[inline]
+pub fn orientation(x: f32, y: f32) -> f32 {
+    let a = y.atan2(x).to_degrees();
+    if a <= -180.0 {
+        180.0
+    } else {
+        a + 0.0
+    }
+}
+
+/// Canny's non-maximum suppression and hysteresis over a gradient pair:
+/// `true` on edge pixels.
+pub fn thin_edges(gx: &[f32], gy: &[f32], w: usize, h: usize, low: f32, high: f32) -> Vec<bool> {
+    let mag: Vec<f32> = gx
+        .par_iter()
+        .zip(gy)
+        .map(|(x, y)| ((*x as f64).hypot(*y as f64)) as f32)
+        .collect();
+    // 0: not a candidate, 1: a local maximum ≥ low, 2: one ≥ high.
+    let mut class = vec![0u8; w * h];
+    if w >= 3 && h >= 3 {
+        class
+            .par_chunks_mut(w)
+            .enumerate()
+            .skip(1)
+            .take(h - 2)
+            .for_each(|(r, row)| {
+                for (col, cl) in row.iter_mut().enumerate().take(w - 1).skip(1) {
+                    let i = r * w + col;
+                    let m = mag[i];
+                    if m < low || m == 0.0 {
+                        continue;
+                    }
+                    let (dx, dy) = (gx[i], gy[i]);
+                    let at = |rr: usize, cc: usize| mag[rr * w + cc];
+                    // One step along (dx, dy)/max(|dx|, |dy|): a whole step on the
+                    // larger axis, a fraction t on the other, interpolated between
+                    // the two neighbours it falls between.
+                    let (sr, sc) = (dy.signum() as isize, dx.signum() as isize);
+                    let (forward, backward) = if dy.abs() >= dx.abs() {
+                        let t = dx.abs() / dy.abs();
+                        let f = |s: isize| {
+                            let rr = (r as isize + s * sr) as usize;
+                            let straight = at(rr, col);
+                            let diag = at(rr, (col as isize + s * sc) as usize);
+                            straight * (1.0 - t) + diag * t
+                        };
+                        (f(1), f(-1))
+                    } else {
+                        let t = dy.abs() / dx.abs();
+                        let f = |s: isize| {
+                            let cc = (col as isize + s * sc) as usize;
+                            let straight = at(r, cc);
+                            let diag = at((r as isize + s * sr) as usize, cc);
+                            straight * (1.0 - t) + diag * t
+                        };
+                        (f(1), f(-1))
+                    };
+                    if m >= forward && m >= backward {
+                        *cl = if m >= high { 2 } else { 1 };
+                    }
+                }
+            });
+    }
+    // Hysteresis: the 8-connected groups of candidates that hold a strong one.
+    let labels = label(&class, w, h, Connectivity::Eight);
+    let mut strong = vec![false; labels.count + 1];
+    for (l, c) in labels.labels.iter().zip(&class) {
+        if *c == 2 {
+            strong[*l as usize] = true;
+        }
+    }
+    labels
+        .labels
+        .par_iter()
+        .map(|&l| l != 0 && strong[l as usize])
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn orientation_range_and_directions() {
+        assert_eq!(orientation(1.0, 0.0), 0.0);
+        assert_eq!(orientation(0.0, 1.0), 90.0);
+        assert_eq!(orientation(-1.0, 0.0), 180.0);
+        assert_eq!(orientation(-1.0, -0.0), 180.0);
+        assert_eq!(orientation(0.0, -1.0), -90.0);
+        assert_eq!(orientation(0.0, 0.0).to_bits(), 0.0f32.to_bits());
+        assert_eq!(orientation(1.0, -0.0).to_bits(), 0.0f32.to_bits());
+    }
+
+    #[test]
+    fn a_ramp_edge_thins_to_one_column() {
+        // A vertical step smoothed over a few columns: the gradient peaks in
+        // one column, which alone survives.
+        let (w, h) = (9, 7);
+        let profile = [0.0f32, 0.0, 1.0, 3.0, 4.0, 3.0, 1.0, 0.0, 0.0];
+        let gx: Vec<f32> = (0..h).flat_map(|_| profile).collect();
+        let gy = vec![0.0; w * h];
+        let e = thin_edges(&gx, &gy, w, h, 0.5, 2.0);
+        for r in 0..h {
+            let row: Vec<bool> = e[r * w..(r + 1) * w].to_vec();
+            let want = (1..h - 1).contains(&r);
+            assert_eq!(
+                row.iter().filter(|v| **v).count(),
+                usize::from(want),
+                "row {r}"
+            );
+            assert_eq!(row[4], want);
+        }
+    }
+}
