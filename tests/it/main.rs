@@ -10,6 +10,7 @@ mod bank_learn;
 mod batch;
 mod borders;
 mod cli;
+mod combine;
 mod engine_oracle;
 mod fusion;
 mod identities;
