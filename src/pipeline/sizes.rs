@@ -40,7 +40,7 @@ pub fn sizes_table(input: (usize, usize, usize), plans: &[StageSizes]) -> String
     let _ = writeln!(s, "input  {} (channels×height×width)", shape(input));
     let _ = writeln!(
         s,
-        "{:<3} {:<5} {:<15} {:<15} {:<17} {:>16} {:<12} engine",
+        "{:<3} {:<7} {:<15} {:<15} {:<17} {:>16} {:<12} engine",
         "#", "stage", "output", "pad t,b,l,r", "field h×w / step", "operations", "unused r,c"
     );
     for (i, p) in plans.iter().enumerate() {
@@ -57,7 +57,7 @@ pub fn sizes_table(input: (usize, usize, usize), plans: &[StageSizes]) -> String
             .map_or("-".to_string(), |c| format!("{} ({})", c.engine, c.reason));
         let _ = writeln!(
             s,
-            "{:<3} {:<5} {:<15} {:<15} {:<17} {:>16} {:<12} {}",
+            "{:<3} {:<7} {:<15} {:<15} {:<17} {:>16} {:<12} {}",
             i + 1,
             p.kind,
             shape(p.output),
@@ -67,7 +67,7 @@ pub fn sizes_table(input: (usize, usize, usize), plans: &[StageSizes]) -> String
             format!("{},{}", p.unused.0, p.unused.1),
             engine
         );
-        let _ = writeln!(s, "{:<9} {}", "", p.what);
+        let _ = writeln!(s, "{:<11} {}", "", p.what);
     }
     let total: u128 = plans
         .iter()

@@ -224,16 +224,16 @@ pub fn cyclic_mapping(lo: f64, hi: f64) -> ViewMapping {
     }
 }
 
-/// Cyclic table indices: round((v − lo)/(hi − lo)·256) mod 256; non-finite
-/// samples take index 0.
+/// Cyclic table indices: round((v − lo)/(hi − lo)·256) mod 256, for v in
+/// [lo, hi] (values outside are taken as the nearest end); non-finite samples
+/// take index 0. In f32 with a truncation, so the loop vectorises.
 fn cyclic(values: &[f32], out: &mut [u8], lo: f64, hi: f64) {
-    let k = 256.0 / if hi > lo { hi - lo } else { 1.0 };
+    let k = (256.0 / if hi > lo { hi - lo } else { 1.0 }) as f32;
+    let lo = lo as f32;
     for (o, v) in out.iter_mut().zip(values) {
-        *o = if v.is_finite() {
-            ((*v as f64 - lo) * k).round().rem_euclid(256.0) as u32 as u8
-        } else {
-            0
-        };
+        // NaN fails the clamp's comparisons and becomes 0 in the cast.
+        let q = ((*v - lo) * k).clamp(0.0, 256.0);
+        *o = ((q + 0.5) as i32 & 255) as u8;
     }
 }
 
