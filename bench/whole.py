@@ -25,6 +25,13 @@ Pairings (the workloads):
   e-probe    `tapmap probe` of 16 random 7×7 kernels over one 4096² 16-bit PNG,
              against `tapmap apply --save maps` of the same bank on the same image
   e-borders  `tapmap borders` of the same bank and image against the same apply
+  f-otsu     (a)'s Sobel pair with --combine gradient --drop-sources --threshold otsu
+             (magnitude, orientation and every map's edge measures at its own Otsu
+             level), default outputs, against the plain Sobel-pair run with default
+             outputs; the maps are checked against numpy.hypot / arctan2 of the plain
+             run's maps
+  f-fixed    the same at --threshold 0.3
+  f-none     the same without edge measures (magnitude and orientation only)
 
 Reported per pairing: the median wall time of each side, the median of the
 per-pair time ratios with their min-max (for a-c the other program's time over
@@ -193,6 +200,23 @@ def helper_check_maps(a_path, b_path):
     print(json.dumps(compare_maps(a_path, b_path)))
 
 
+def helper_check_gradient(comb_out, plain_out):
+    """(f): magnitude and orientation equal hypot and degrees(arctan2) of the
+    plain run's sobel-x, sobel-y maps (orientation modulo 360)."""
+    import numpy as np
+
+    c = np.load(os.path.join(comb_out, "maps", "image.npy"))
+    p = np.load(os.path.join(plain_out, "maps", "image.npy"))
+    mag = np.hypot(p[0], p[1])
+    ori = np.degrees(np.arctan2(p[1], p[0]))
+    dm = float(np.max(np.abs(c[0] - mag) / np.maximum(mag, 1e-30)))
+    d = np.abs(c[1] - ori) % 360.0
+    da = float(np.max(np.minimum(d, 360.0 - d)))
+    ok = dm <= 1e-6 and da <= 1e-3
+    print(json.dumps({"agree": ok, "text": "%s (magnitude %.1e relative, orientation %.1e deg)"
+                      % ("agree" if ok else "DIFFER", dm, da)}))
+
+
 def helper_check_batch(tap_out, ref_out, inputs):
     """(c): every image's maps, every stats.csv number, and the first image's views."""
     import csv
@@ -341,7 +365,8 @@ def helper_versions():
 
 HELPERS = {"generate": helper_generate, "check-maps": helper_check_maps, "check-batch": helper_check_batch,
            "check-same": helper_check_same, "check-probe": helper_check_probe,
-           "check-borders": helper_check_borders, "versions": helper_versions}
+           "check-borders": helper_check_borders, "check-gradient": helper_check_gradient,
+           "versions": helper_versions}
 
 
 def helper(name, *args):
@@ -505,6 +530,16 @@ def pairings(tapmap, inp, side):
                 [tapmap, "borders", "--bank", w16, "--white", "4095"] + quiet + [cap],
                 e_apply, "tapmap apply --save maps", "cost", ("<=", 1.5), mem_goal=("<=", 1.5),
                 check=lambda a, b: helper("check-borders", a, b, "capture")),
+    ] + [
+        Pairing("f-" + tag, "sobel pair + gradient, sources dropped%s; default outputs vs the plain pair" % what,
+                sobel2[:4] + ["--combine", "gradient", "--drop-sources"] + measure + sobel2[4:], sobel2,
+                "tapmap plain Sobel pair", "cost", ("<=", 1.2),
+                lambda a, b: helper("check-gradient", a, b))
+        for tag, what, measure in [
+            ("otsu", ", edge measures at each map's Otsu level", ["--threshold", "otsu"]),
+            ("fixed", ", edge measures at 0.3", ["--threshold", "0.3"]),
+            ("none", "", []),
+        ]
     ]
 
 

@@ -264,9 +264,99 @@ fn find(parent: &mut [u32], mut i: u32) -> u32 {
 
 /// Joins runs of neighbouring rows that touch; gives each run's component
 /// root, roots being the component's first run in raster order.
+///
+/// Bands of rows are joined in parallel, each in its own part of the parent
+/// array (its runs' links stay inside it), then the rows where bands meet are
+/// joined, and every run's root is read off without changing the array.
 fn join(runs: &[Run], conn: Connectivity) -> Vec<u32> {
     let mut parent: Vec<u32> = (0..runs.len() as u32).collect();
     let reach = u32::from(conn == Connectivity::Eight);
+    // Band starts: run indices where a row begins, about evenly spaced.
+    let parts = rayon::current_num_threads().max(1) * 4;
+    let mut starts = vec![0usize];
+    for k in 1..parts {
+        let mut i = runs.len() * k / parts;
+        while i > 0 && i < runs.len() && runs[i].row == runs[i - 1].row {
+            i += 1;
+        }
+        if i < runs.len() && i > *starts.last().expect("one start") {
+            starts.push(i);
+        }
+    }
+    starts.push(runs.len());
+    {
+        let mut pieces: Vec<(usize, &mut [u32])> = Vec::new();
+        let mut rest: &mut [u32] = &mut parent;
+        for w in starts.windows(2) {
+            let (piece, tail) = rest.split_at_mut(w[1] - w[0]);
+            pieces.push((w[0], piece));
+            rest = tail;
+        }
+        pieces.into_par_iter().for_each(|(first, piece)| {
+            join_rows(
+                &runs[first..first + piece.len()],
+                piece,
+                first as u32,
+                reach,
+            );
+        });
+    }
+    // Where bands meet: the first row of a band against the last of the one before.
+    for w in starts.windows(3) {
+        let (prev, at, end) = (w[0], w[1], w[2]);
+        if runs[at].row != runs[at - 1].row + 1 {
+            continue;
+        }
+        let above_row = runs[at - 1].row;
+        let mut a0 = at;
+        while a0 > prev && runs[a0 - 1].row == above_row {
+            a0 -= 1;
+        }
+        let mut j = a0;
+        for i in at..end {
+            if runs[i].row != runs[at].row {
+                break;
+            }
+            let run = runs[i];
+            while j < at && runs[j].end + reach <= run.start {
+                j += 1;
+            }
+            let mut k = j;
+            while k < at && runs[k].start < run.end + reach {
+                let (ra, rb) = (find(&mut parent, k as u32), find(&mut parent, i as u32));
+                if ra != rb {
+                    parent[ra.max(rb) as usize] = ra.min(rb);
+                }
+                k += 1;
+            }
+        }
+    }
+    let parent = &parent;
+    (0..runs.len() as u32)
+        .into_par_iter()
+        .map(|mut i| {
+            while parent[i as usize] != i {
+                i = parent[i as usize];
+            }
+            i
+        })
+        .collect()
+}
+
+/// Joins the runs of one band (`runs`, whose first has index `first`) in
+/// its part of the parent array.
+fn join_rows(runs: &[Run], parent: &mut [u32], first: u32, reach: u32) {
+    // Local indices inside; stored values are global.
+    let local = |g: u32| g - first;
+    let find_local = |parent: &mut [u32], i: usize| -> usize {
+        let mut i = i;
+        while local(parent[i]) as usize != i {
+            let p = local(parent[i]) as usize;
+            parent[i] = parent[p];
+            i = p;
+        }
+        i
+    };
     // The row above's runs are [j, above_end); `j` only moves past runs that
     // end before the current run can reach, which no later run of the row
     // reaches either.
@@ -287,18 +377,24 @@ fn join(runs: &[Run], conn: Connectivity) -> Vec<u32> {
             j += 1;
         }
         let mut k = j;
+        let mut mine = i;
         while k < above_end && runs[k].start < run.end + reach {
-            let (ra, rb) = (find(&mut parent, k as u32), find(&mut parent, i as u32));
-            if ra != rb {
-                // The earlier run stays root, so roots are first in raster order.
-                parent[ra.max(rb) as usize] = ra.min(rb);
+            let ra = find_local(parent, k);
+            if mine == i && local(parent[i]) as usize == i {
+                // The first run above it that touches: take its root.
+                parent[i] = ra as u32 + first;
+                mine = ra;
+            } else {
+                let rb = find_local(parent, mine);
+                if ra != rb {
+                    // The earlier run stays root, so roots are first in raster order.
+                    parent[ra.max(rb)] = ra.min(rb) as u32 + first;
+                }
+                mine = ra.min(rb);
             }
             k += 1;
         }
     }
-    (0..runs.len() as u32)
-        .map(|i| find(&mut parent, i))
-        .collect()
 }
 
 /// The components of the samples of `values` (`w × h`, row-major) above
@@ -421,73 +517,143 @@ pub fn label(mask: &[u8], w: usize, h: usize, conn: Connectivity) -> Labels {
 /// accumulates level × count in `u32`, which overflows for images of more
 /// than 2³²/255 ≈ 16.8 million pixels at high levels.
 pub fn otsu(values: &[f32], lo: f64, hi: f64) -> f64 {
-    const BINS: usize = 256;
-    if hi <= lo || hi.is_nan() || lo.is_nan() {
-        return lo;
+    let bins = OtsuBins::new(lo, hi);
+    values.par_chunks(1 << 16).for_each(|c| bins.add(c));
+    bins.level()
+}
+
+/// Bins of the histogram behind [`otsu`], filled a chunk at a time from any
+/// thread (so the statistics' own pass over a map can fill it as it goes).
+pub struct OtsuBins {
+    lo: f64,
+    hi: f64,
+    norm: f64,
+    eps: f32,
+    counts: std::sync::Mutex<[u64; OTSU_BINS]>,
+}
+
+const OTSU_BINS: usize = 256;
+
+impl OtsuBins {
+    /// Empty bins over [lo, hi], the extremes of the map's finite samples.
+    pub fn new(lo: f64, hi: f64) -> OtsuBins {
+        let span = if hi > lo { hi - lo } else { 1.0 };
+        // numpy.histogram's rule: (v − lo)·bins/(hi − lo), bins half open, the last closed.
+        let norm = OTSU_BINS as f64 / span;
+        // How far an f32 bin position can stray from the f64 one: rounding of
+        // lo and of each sample's offset, relative to the range.
+        let eps = (1e-4 + OTSU_BINS as f64 * (lo.abs() + hi.abs()) / span * 2.4e-7) as f32;
+        OtsuBins {
+            lo,
+            hi,
+            norm,
+            eps,
+            counts: std::sync::Mutex::new([0; OTSU_BINS]),
+        }
     }
-    let width = (hi - lo) / BINS as f64;
-    // numpy.histogram's rule: (v − lo)·bins/(hi − lo), bins half open, the last closed.
-    let norm = BINS as f64 / (hi - lo);
-    let hist = values
-        .par_chunks(1 << 16)
-        .map(|c| {
-            // Bin numbers first, in a loop that vectorises (non-finite samples
-            // go to a 257th bin), then counted into four histograms in turn,
-            // so consecutive samples do not wait on one counter.
-            let bins: Vec<u16> = c
-                .iter()
-                .map(|v| {
-                    let b = ((*v as f64 - lo) * norm).clamp(0.0, (BINS - 1) as f64) as u16;
-                    if v.is_finite() {
-                        b
-                    } else {
-                        BINS as u16
+
+    /// Counts the finite samples of `c` (with AVX2 where the CPU has it).
+    pub fn add(&self, c: &[f32]) {
+        #[cfg(target_arch = "x86_64")]
+        if crate::engine::simd::avx2() {
+            // SAFETY: the CPU has AVX2 (checked at run time just above).
+            unsafe { self.add_avx2(c) };
+            return;
+        }
+        self.add_body(c);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn add_avx2(&self, c: &[f32]) {
+        self.add_body(c);
+    }
+
+    #[inline(always)]
+    fn add_body(&self, c: &[f32]) {
+        const BINS: usize = OTSU_BINS;
+        let (lo, norm, eps) = (self.lo, self.norm, self.eps);
+        let exact = |v: f32| {
+            if v.is_finite() {
+                ((v as f64 - lo) * norm).clamp(0.0, (BINS - 1) as f64) as u16
+            } else {
+                BINS as u16
+            }
+        };
+        let (lo32, norm32, top) = (lo as f32, norm as f32, (BINS - 1) as f32);
+        let mut h = [[0u32; BINS + 1]; 4];
+        // A small block at a time, on the stack: a heap buffer per chunk
+        // cost more in fresh pages than the arithmetic.
+        let mut bins = [0u16; 1024];
+        for vs in c.chunks(1024) {
+            let bins = &mut bins[..vs.len()];
+            if eps < 0.25 {
+                for (b, v) in bins.iter_mut().zip(vs) {
+                    *b = ((*v - lo32) * norm32).clamp(0.0, top) as u16;
+                }
+                for (bs, vs) in bins.chunks_mut(64).zip(vs.chunks(64)) {
+                    // The fraction past the bin's lower edge; NaN and ∞ fail.
+                    let doubt = bs.iter().zip(vs).fold(false, |a, (b, v)| {
+                        let f = (*v - lo32) * norm32 - f32::from(*b);
+                        a | !(f > eps && f < 1.0 - eps)
+                    });
+                    if doubt {
+                        for (b, v) in bs.iter_mut().zip(vs) {
+                            *b = exact(*v);
+                        }
                     }
-                })
-                .collect();
-            let mut h = [[0u32; BINS + 1]; 4];
+                }
+            } else {
+                for (b, v) in bins.iter_mut().zip(vs) {
+                    *b = exact(*v);
+                }
+            }
             for q in bins.chunks(4) {
                 for (k, b) in q.iter().enumerate() {
                     h[k][*b as usize] += 1;
                 }
             }
-            let mut t = [0u64; BINS];
-            for (i, t) in t.iter_mut().enumerate() {
-                *t = h.iter().map(|h| u64::from(h[i])).sum();
-            }
-            t
-        })
-        .reduce(
-            || [0u64; BINS],
-            |mut a, b| {
-                a.iter_mut().zip(b).for_each(|(x, y)| *x += y);
-                a
-            },
-        );
-    let centre = |i: usize| lo + (i as f64 + 0.5) * width;
-    let total: f64 = hist.iter().map(|&c| c as f64).sum();
-    let total_sum: f64 = hist
-        .iter()
-        .enumerate()
-        .map(|(i, &c)| c as f64 * centre(i))
-        .sum();
-    let (mut w0, mut s0) = (0.0f64, 0.0f64);
-    let (mut best, mut best_var) = (0usize, -1.0f64);
-    for (i, &c) in hist.iter().enumerate().take(BINS - 1) {
-        w0 += c as f64;
-        s0 += c as f64 * centre(i);
-        let w1 = total - w0;
-        if w0 == 0.0 || w1 == 0.0 {
-            continue;
         }
-        let (m0, m1) = (s0 / w0, (total_sum - s0) / w1);
-        let var = w0 * w1 * (m0 - m1) * (m0 - m1);
-        if var > best_var {
-            best_var = var;
-            best = i;
+        let mut counts = self.counts.lock().unwrap_or_else(|e| e.into_inner());
+        for (i, t) in counts.iter_mut().enumerate() {
+            *t += h.iter().map(|h| u64::from(h[i])).sum::<u64>();
         }
     }
-    centre(best)
+
+    /// The threshold (see [`otsu`]).
+    pub fn level(&self) -> f64 {
+        const BINS: usize = OTSU_BINS;
+        let (lo, hi) = (self.lo, self.hi);
+        if hi <= lo || hi.is_nan() || lo.is_nan() {
+            return lo;
+        }
+        let hist = *self.counts.lock().unwrap_or_else(|e| e.into_inner());
+        let width = (hi - lo) / BINS as f64;
+        let centre = |i: usize| lo + (i as f64 + 0.5) * width;
+        let total: f64 = hist.iter().map(|&c| c as f64).sum();
+        let total_sum: f64 = hist
+            .iter()
+            .enumerate()
+            .map(|(i, &c)| c as f64 * centre(i))
+            .sum();
+        let (mut w0, mut s0) = (0.0f64, 0.0f64);
+        let (mut best, mut best_var) = (0usize, -1.0f64);
+        for (i, &c) in hist.iter().enumerate().take(BINS - 1) {
+            w0 += c as f64;
+            s0 += c as f64 * centre(i);
+            let w1 = total - w0;
+            if w0 == 0.0 || w1 == 0.0 {
+                continue;
+            }
+            let (m0, m1) = (s0 / w0, (total_sum - s0) / w1);
+            let var = w0 * w1 * (m0 - m1) * (m0 - m1);
+            if var > best_var {
+                best_var = var;
+                best = i;
+            }
+        }
+        centre(best)
+    }
 }
 
 #[cfg(test)]

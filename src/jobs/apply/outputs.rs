@@ -16,7 +16,7 @@ use crate::jobs::tables::{Finished, ImageRow, StatsRow};
 use crate::jobs::{safe_name, Save, ViewOptions};
 use crate::limits::bytes_text;
 use crate::pipeline::{Plan, PlanCache};
-use crate::regions::{regions, Connectivity, Regions, Threshold};
+use crate::regions::{regions, Connectivity, OtsuBins, Regions, Threshold};
 use crate::render::{sheet, view, write_rgb, write_view};
 use crate::stage::RecipeSpec;
 use crate::stats::map_stats;
@@ -257,21 +257,39 @@ fn write_outputs(
             } else {
                 cx.table
             };
+            let mut otsu_level = None;
             let pic = if cx.save.stats && draw && crate::stats::takes_histograms(h * w) {
                 // One look at the map for the view's levels and the statistics'
                 // second pass, after the first pass found the extremes.
                 let first = crate::stats::FirstPass::of(plane(k), given);
                 let (lo, hi) = first.extremes();
                 let m = choose(lo, hi);
+                // Otsu's histogram fills in the same pass, from the extremes.
+                let bins = match (cx.threshold, lo, hi) {
+                    (Some(Threshold::Otsu), Some(lo), Some(hi)) => Some(OtsuBins::new(lo, hi)),
+                    _ => None,
+                };
+                let add = |v: &[f32]| {
+                    if let Some(b) = &bins {
+                        b.add(v);
+                    }
+                };
                 let (mut u8s, mut u16s) = (Vec::new(), Vec::new());
                 let stats = if m.levels > 255 {
                     u16s = vec![0u16; h * w];
-                    first.finish_with(plane(k), &mut u16s, |v, o| view::levels_u16(v, o, &m))
+                    first.finish_with(plane(k), &mut u16s, |v, o| {
+                        view::levels_u16(v, o, &m);
+                        add(v);
+                    })
                 } else {
                     u8s = vec![0u8; h * w];
-                    first.finish_with(plane(k), &mut u8s, |v, o| view::levels_u8(v, o, &m))
+                    first.finish_with(plane(k), &mut u8s, |v, o| {
+                        view::levels_u8(v, o, &m);
+                        add(v);
+                    })
                 };
                 o.stats = Some(stats);
+                otsu_level = bins.map(|b| b.level() as f32);
                 Some((view::view_of(&m, w, h, u8s, u16s), m))
             } else {
                 if cx.save.stats {
@@ -287,12 +305,27 @@ fn write_outputs(
                     (view::render(plane(k), h, w, &m), m)
                 })
             };
-            // Edge measures, for the table and for the box drawn on pictures.
-            if let Some(t) = cx
-                .threshold
-                .filter(|_| cx.save.stats || cx.save.sheets || cx.save.keys)
-            {
-                let g = measure(plane(k), (w, h), t, cx, o.stats.as_ref());
+            // Edge measures, for the table and for the box drawn on pictures,
+            // found while the view is encoded and written: neither needs the other.
+            let stats_now = o.stats.clone();
+            let (g, view_written) = rayon::join(
+                || {
+                    cx.threshold
+                        .filter(|_| cx.save.stats || cx.save.sheets || cx.save.keys)
+                        .map(|t| measure(plane(k), (w, h), t, cx, stats_now.as_ref(), otsu_level))
+                },
+                || match (&pic, cx.save.views) {
+                    (Some((pic, m)), true) => {
+                        let p = out.join("views").join(&stem).join(file_of(k, "png"));
+                        Some(write_view(&p, pic, table, cx.view.png).map(|()| (p, m.clone())))
+                    }
+                    _ => None,
+                },
+            );
+            if let Some(v) = view_written {
+                o.view = Some(v?);
+            }
+            if let Some(g) = g {
                 if let Some(s) = &mut o.stats {
                     // With Otsu the level is known only now.
                     s.above_fraction = Some(g.above as f64 / (h * w).max(1) as f64);
@@ -345,11 +378,6 @@ fn write_outputs(
                         picture: picture(),
                         key: Some(key),
                     });
-                }
-                if cx.save.views {
-                    let p = out.join("views").join(&stem).join(file_of(k, "png"));
-                    write_view(&p, &pic, table, cx.view.png)?;
-                    o.view = Some((p, m));
                 }
             }
             Ok(())
@@ -444,18 +472,20 @@ fn write_outputs(
     Ok(())
 }
 
-/// The edge measures of one map at `t` (Otsu's level found from the map's
-/// extremes, taken from its statistics when they are there).
+/// The edge measures of one map at `t` (Otsu's level `known` when the
+/// statistics' pass found it, else found here from the map's extremes).
 fn measure(
     values: &[f32],
     (w, h): (usize, usize),
     t: Threshold,
     cx: &ImageContext,
     stats: Option<&crate::stats::MapStats>,
+    known: Option<f32>,
 ) -> Regions {
-    let level = match t {
-        Threshold::Value(v) => v,
-        Threshold::Otsu => {
+    let level = match (t, known) {
+        (Threshold::Value(v), _) => v,
+        (Threshold::Otsu, Some(v)) => v,
+        (Threshold::Otsu, None) => {
             let (lo, hi) = match stats {
                 Some(s) => (s.min, s.max),
                 None => {
