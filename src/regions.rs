@@ -194,37 +194,36 @@ fn runs_of<T: Copy + Sync, F: Fn(T) -> bool + Sync>(
         .map(|b| {
             let mut out = Vec::new();
             let mut words: Vec<u64> = Vec::new();
-            let (mut starts, mut ends) = (Vec::new(), Vec::new());
             for r in r0 + b * band..(r0 + (b + 1) * band).min(r1) {
                 let row = &values[r * w + c0..r * w + c1.max(c0)];
                 words.clear();
                 words.extend(row.chunks(64).map(|chunk| mask_word(chunk, &above)));
-                starts.clear();
-                ends.clear();
-                // Bit i of `before` is the sample before position i.
+                // Bit i of `before` is the sample before position i; the
+                // transitions alternate: a run's start, its end, the next start…
                 let mut carry = 0u64;
+                let mut open: Option<usize> = None;
                 for (k, &m) in words.iter().enumerate() {
-                    let before = (m << 1) | carry;
-                    let (mut up, mut down) = (m & !before, !m & before);
-                    while up != 0 {
-                        starts.push(k * 64 + up.trailing_zeros() as usize);
-                        up &= up - 1;
-                    }
-                    while down != 0 {
-                        ends.push(k * 64 + down.trailing_zeros() as usize);
-                        down &= down - 1;
+                    let mut t = m ^ ((m << 1) | carry);
+                    while t != 0 {
+                        let p = k * 64 + t.trailing_zeros() as usize;
+                        t &= t - 1;
+                        match open.take() {
+                            None => open = Some(p),
+                            Some(s) => out.push(Run {
+                                row: r as u32,
+                                start: (c0 + s) as u32,
+                                end: (c0 + p) as u32,
+                            }),
+                        }
                     }
                     carry = m >> 63;
                 }
-                // A run open at the end of the row (whole last word) ends there.
-                if ends.len() < starts.len() {
-                    ends.push(row.len());
-                }
-                for (&s, &e) in starts.iter().zip(&ends) {
+                // A run open at the end of the row ends there.
+                if let Some(s) = open {
                     out.push(Run {
                         row: r as u32,
                         start: (c0 + s) as u32,
-                        end: (c0 + e) as u32,
+                        end: (c0 + row.len()) as u32,
                     });
                 }
             }
