@@ -33,6 +33,7 @@
 use std::fmt;
 
 use crate::error::Error;
+pub use crate::stage::maps::MapInfo;
 
 /// A map named in `of`: by name or by 0-based index among the stage's input maps.
 #[derive(Debug, Clone, PartialEq)]
@@ -235,33 +236,6 @@ pub struct Thin {
     pub name: Option<String>,
     /// Keep the input maps before the edge map.
     pub keep: bool,
-}
-
-/// What is known of one map while a recipe is walked: its name, the angle its
-/// kernel declares, whether it is ≥ 0 by construction, and the range of a
-/// cyclic quantity (an orientation) it holds.
-#[derive(Debug, Clone, PartialEq)]
-pub struct MapInfo {
-    /// The map's name.
-    pub name: String,
-    /// Declared angle in degrees (kernels, and maps made from kernels of one angle).
-    pub angle: Option<f64>,
-    /// ≥ 0 by construction.
-    pub non_negative: bool,
-    /// The period of a cyclic value, (lo, hi): lo and hi are the same direction.
-    pub cyclic: Option<(f64, f64)>,
-}
-
-impl MapInfo {
-    /// A plain map.
-    pub fn plain(name: String, non_negative: bool) -> MapInfo {
-        MapInfo {
-            name,
-            angle: None,
-            non_negative,
-            cyclic: None,
-        }
-    }
 }
 
 /// One output resolved: its kind and the positions of its sources in the

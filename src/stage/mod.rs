@@ -2,6 +2,7 @@
 
 pub mod act;
 pub mod combine;
+pub mod maps;
 pub mod pads;
 pub mod pool;
 pub mod recipe;
