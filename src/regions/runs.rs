@@ -14,11 +14,13 @@ pub(super) struct Run {
 }
 
 /// Runs of `above` per row over columns [c0, c1) of rows [r0, r1), rows in
-/// order (parallel over bands of rows). Each row becomes a bit mask first,
-/// 64 samples a word, and runs are read off the mask's 0→1 and 1→0
-/// transitions with bit operations: the work follows the number of runs, and
-/// a noisy map (an orientation's, half of it above) costs no mispredicted
-/// branch per sample.
+/// order. Each row becomes a bit mask, 64 samples a word, and runs are read
+/// off the mask's 0→1 and 1→0 transitions with bit operations: the work
+/// follows the number of runs, and a noisy map (an orientation's, half of it
+/// above) costs no mispredicted branch per sample. Two parallel passes over
+/// bands of rows: the masks and each band's count of runs (a popcount of its
+/// transitions), then every band writes its runs into its own part of one
+/// vector sized exactly, so no vector grows or is copied.
 pub(super) fn runs_of<T: Copy + Sync, F: Fn(T) -> bool + Sync>(
     values: &[T],
     w: usize,
@@ -27,49 +29,91 @@ pub(super) fn runs_of<T: Copy + Sync, F: Fn(T) -> bool + Sync>(
     above: F,
 ) -> Vec<Run> {
     let rows = r1.saturating_sub(r0);
+    let cols = c1.saturating_sub(c0);
+    let per_row = cols.div_ceil(64);
     let band = (1usize << 16).div_ceil(w.max(1)).max(1);
-    let parts: Vec<Vec<Run>> = (0..rows.div_ceil(band))
+    let mut masks = vec![0u64; rows * per_row];
+    // Pass one: masks, and the runs of each band.
+    let counts: Vec<usize> = masks
+        .par_chunks_mut((band * per_row).max(1))
+        .enumerate()
+        .map(|(b, words)| {
+            let mut n = 0;
+            for (i, row_words) in words.chunks_mut(per_row.max(1)).enumerate() {
+                let r = r0 + b * band + i;
+                let row = &values[r * w + c0..r * w + c0 + cols];
+                let mut carry = 0u64;
+                for (m, chunk) in row_words.iter_mut().zip(row.chunks(64)) {
+                    *m = mask_word(chunk, &above);
+                    n += (*m ^ ((*m << 1) | carry)).count_ones() as usize;
+                    carry = *m >> 63;
+                }
+                // A run open at the end of the row ends there.
+                n += carry as usize;
+            }
+            n / 2
+        })
+        .collect();
+    let total: usize = counts.iter().sum();
+    let mut runs = vec![
+        Run {
+            row: 0,
+            start: 0,
+            end: 0
+        };
+        total
+    ];
+    let mut parts: Vec<&mut [Run]> = Vec::with_capacity(counts.len());
+    let mut rest: &mut [Run] = &mut runs;
+    for &n in &counts {
+        let (part, tail) = rest.split_at_mut(n);
+        parts.push(part);
+        rest = tail;
+    }
+    // Pass two: each band's runs into its part.
+    parts
         .into_par_iter()
-        .map(|b| {
-            let mut out = Vec::new();
-            let mut words: Vec<u64> = Vec::new();
-            for r in r0 + b * band..(r0 + (b + 1) * band).min(r1) {
-                let row = &values[r * w + c0..r * w + c1.max(c0)];
-                words.clear();
-                words.extend(row.chunks(64).map(|chunk| mask_word(chunk, &above)));
-                // Bit i of `before` is the sample before position i; the
-                // transitions alternate: a run's start, its end, the next start…
+        .zip(masks.par_chunks((band * per_row).max(1)))
+        .enumerate()
+        .for_each(|(b, (out, words))| {
+            let mut at = 0;
+            for (i, row_words) in words.chunks(per_row.max(1)).enumerate() {
+                let r = (r0 + b * band + i) as u32;
                 let mut carry = 0u64;
                 let mut open: Option<usize> = None;
-                for (k, &m) in words.iter().enumerate() {
+                for (k, &m) in row_words.iter().enumerate() {
+                    // Bit i of `before` is the sample before position i; the
+                    // transitions alternate: a run's start, its end, the next start…
                     let mut t = m ^ ((m << 1) | carry);
                     while t != 0 {
                         let p = k * 64 + t.trailing_zeros() as usize;
                         t &= t - 1;
                         match open.take() {
                             None => open = Some(p),
-                            Some(s) => out.push(Run {
-                                row: r as u32,
-                                start: (c0 + s) as u32,
-                                end: (c0 + p) as u32,
-                            }),
+                            Some(s) => {
+                                out[at] = Run {
+                                    row: r,
+                                    start: (c0 + s) as u32,
+                                    end: (c0 + p) as u32,
+                                };
+                                at += 1;
+                            }
                         }
                     }
                     carry = m >> 63;
                 }
-                // A run open at the end of the row ends there.
                 if let Some(s) = open {
-                    out.push(Run {
-                        row: r as u32,
+                    out[at] = Run {
+                        row: r,
                         start: (c0 + s) as u32,
-                        end: (c0 + row.len()) as u32,
-                    });
+                        end: (c0 + cols) as u32,
+                    };
+                    at += 1;
                 }
             }
-            out
-        })
-        .collect();
-    parts.concat()
+            debug_assert_eq!(at, out.len());
+        });
+    runs
 }
 
 /// Bit i of the word is `above(chunk[i])` (a chunk of at most 64). The
