@@ -196,32 +196,8 @@ pub fn regions(
         |v: f32| v > threshold,
     );
     let roots = join(&runs, conn);
-    // Per root: area, bbox, Σx, Σy.
-    let mut acc: Vec<(u64, u32, u32, u32, u32, f64, f64)> = Vec::new();
-    let mut slot = vec![u32::MAX; runs.len()];
-    let mut components = 0u64;
-    let mut above = 0u64;
-    for (run, &root) in runs.iter().zip(&roots) {
-        let k = if slot[root as usize] == u32::MAX {
-            slot[root as usize] = acc.len() as u32;
-            acc.push((0, u32::MAX, u32::MAX, 0, 0, 0.0, 0.0));
-            components += 1;
-            acc.len() - 1
-        } else {
-            slot[root as usize] as usize
-        };
-        let len = u64::from(run.end - run.start);
-        let a = &mut acc[k];
-        a.0 += len;
-        a.1 = a.1.min(run.start);
-        a.2 = a.2.min(run.row);
-        a.3 = a.3.max(run.end - 1);
-        a.4 = a.4.max(run.row);
-        // Σ of columns start..end−1 and the row times the length.
-        a.5 += (u64::from(run.start) + u64::from(run.end - 1)) as f64 * len as f64 / 2.0;
-        a.6 += f64::from(run.row) * len as f64;
-        above += len;
-    }
+    let (acc, mut above) = accumulate(&runs, &roots);
+    let components = acc.len() as u64;
     if inset > 0 {
         above = values
             .par_chunks(1 << 16)
@@ -249,6 +225,107 @@ pub fn regions(
         components,
         largest,
     }
+}
+
+/// One component's sums: area, bounding box, Σ column, Σ row (the sums are of
+/// whole numbers below 2⁵³, so exact in f64 whatever their order).
+#[derive(Debug, Clone, Copy)]
+struct Acc(u64, u32, u32, u32, u32, f64, f64);
+
+impl Acc {
+    const EMPTY: Acc = Acc(0, u32::MAX, u32::MAX, 0, 0, 0.0, 0.0);
+
+    fn add(&mut self, run: &runs::Run) {
+        let len = u64::from(run.end - run.start);
+        self.0 += len;
+        self.1 = self.1.min(run.start);
+        self.2 = self.2.min(run.row);
+        self.3 = self.3.max(run.end - 1);
+        self.4 = self.4.max(run.row);
+        // Σ of columns start..end−1 and the row times the length.
+        self.5 += (u64::from(run.start) + u64::from(run.end - 1)) as f64 * len as f64 / 2.0;
+        self.6 += f64::from(run.row) * len as f64;
+    }
+
+    fn merge(&mut self, o: &Acc) {
+        self.0 += o.0;
+        self.1 = self.1.min(o.1);
+        self.2 = self.2.min(o.2);
+        self.3 = self.3.max(o.3);
+        self.4 = self.4.max(o.4);
+        self.5 += o.5;
+        self.6 += o.6;
+    }
+}
+
+/// The sums of every component, in the order of their roots (raster order of
+/// first run), and the samples in all runs. Fixed blocks of runs in parallel:
+/// a block keeps its own components' sums in a dense table and those of
+/// components begun in earlier blocks aside, added to them afterwards.
+fn accumulate(runs: &[runs::Run], roots: &[u32]) -> (Vec<Acc>, u64) {
+    const BLOCK: usize = 1 << 16;
+    type Aside = std::collections::HashMap<u32, Acc>;
+    /// A block's own components (root, sums), those begun before it, its samples.
+    type Block = (Vec<(u32, Acc)>, Aside, u64);
+    let blocks: Vec<Block> = runs
+        .par_chunks(BLOCK)
+        .zip(roots.par_chunks(BLOCK))
+        .enumerate()
+        .map(|(b, (rs, ro))| {
+            let first = (b * BLOCK) as u32;
+            let mut slot = vec![u32::MAX; rs.len()];
+            let mut own: Vec<(u32, Acc)> = Vec::new();
+            let mut aside = Aside::new();
+            let mut last: Option<(u32, Acc)> = None;
+            let mut above = 0u64;
+            for (run, &root) in rs.iter().zip(ro) {
+                above += u64::from(run.end - run.start);
+                if root >= first {
+                    let k = &mut slot[(root - first) as usize];
+                    if *k == u32::MAX {
+                        *k = own.len() as u32;
+                        own.push((root, Acc::EMPTY));
+                    }
+                    own[*k as usize].1.add(run);
+                } else {
+                    // Runs of one earlier component (often one large one)
+                    // come together: keep the last one at hand.
+                    match &mut last {
+                        Some((r, a)) if *r == root => a.add(run),
+                        _ => {
+                            if let Some((r, a)) = last.take() {
+                                aside.entry(r).or_insert(Acc::EMPTY).merge(&a);
+                            }
+                            let mut a = Acc::EMPTY;
+                            a.add(run);
+                            last = Some((root, a));
+                        }
+                    }
+                }
+            }
+            if let Some((r, a)) = last {
+                aside.entry(r).or_insert(Acc::EMPTY).merge(&a);
+            }
+            own.sort_unstable_by_key(|e| e.0);
+            (own, aside, above)
+        })
+        .collect();
+    let above = blocks.iter().map(|b| b.2).sum();
+    let mut all: Vec<(u32, Acc)> = Vec::new();
+    let mut asides = Vec::new();
+    for (own, aside, _) in blocks {
+        all.extend(own);
+        asides.push(aside);
+    }
+    for aside in asides {
+        for (root, a) in aside {
+            let k = all
+                .binary_search_by_key(&root, |e| e.0)
+                .expect("a component's root lies in an earlier block");
+            all[k].1.merge(&a);
+        }
+    }
+    (all.into_iter().map(|e| e.1).collect(), above)
 }
 
 /// Component labels of the pixels where `mask` is not 0: `labels[i]` is 0 for
