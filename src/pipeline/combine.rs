@@ -352,6 +352,12 @@ pub fn orientation(x: f32, y: f32) -> f32 {
 
 /// Canny's non-maximum suppression and hysteresis over a gradient pair:
 /// `true` on edge pixels.
+///
+/// Written here because imageproc's `edges::canny` takes an 8-bit image and
+/// does its own fixed smoothing (σ = 1.4) and Sobel gradients, while this
+/// stage works on whatever float pair the recipe's conv stages made, and
+/// imageproc keeps its suppression and hysteresis steps private. The
+/// hysteresis's connected groups come from [`crate::regions::label`].
 pub fn thin_edges(gx: &[f32], gy: &[f32], w: usize, h: usize, low: f32, high: f32) -> Vec<bool> {
     let mag: Vec<f32> = gx
         .par_iter()
