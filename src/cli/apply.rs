@@ -13,7 +13,8 @@ pub const AFTER_HELP: &str = "Examples:\n  \
     tapmap apply --recipe kernels/line-a-edges.recipe.toml --out runs/night sample_data\n  \
     tapmap apply --bank edges --white 4095 --save all --out runs/s1 'captures/s1/**/*.png'\n  \
     tapmap apply --bank gaussian:sigma=2 --pad reflect --stride 2 --out blur tile.tif\n  \
-    tapmap apply --bank my-filters.toml --color rgb --act relu --pool max --pool-size 2 --out fm photos/\n\n\
+    tapmap apply --bank my-filters.toml --color rgb --act relu --pool max --pool-size 2 --out fm photos/\n  \
+    tapmap apply --bank sobel-x+sobel-y --white 4095 --combine gradient --drop-sources --threshold otsu --out edges captures/\n\n\
     Outputs mirror each input's path below its folder or pattern root:\n  \
     OUT/maps/P.npy (float32 C×H×W, numpy.load), OUT/views/P/NN-name.png, OUT/sheets/P.png,\n  \
     OUT/tiff/P/NN-name.tif, OUT/keys/P/NN-name.png, OUT/stats.csv, OUT/images.csv, OUT/manifest.json.";
