@@ -3,10 +3,13 @@
 use clap::Args;
 
 use tapmap::error::Error;
+use tapmap::jobs::follow::{run_follow, FollowOptions};
 use tapmap::jobs::shard::{resolve, ShardSpec};
 use tapmap::jobs::{run_apply, ApplyJob, Save, Stop, ViewOptions};
 
-use super::args::{parse_depth, parse_range, thread_count, CombineArgs, RunArgs, StageArgs};
+use super::args::{
+    parse_depth, parse_duration, parse_range, thread_count, CombineArgs, RunArgs, StageArgs,
+};
 use super::{command_line, status, watch_stop_signals, Terminal, EXIT_SOME_FAILED};
 
 pub const AFTER_HELP: &str = "Examples:\n  \
@@ -14,7 +17,8 @@ pub const AFTER_HELP: &str = "Examples:\n  \
     tapmap apply --bank edges --white 4095 --save all --out runs/s1 'captures/s1/**/*.png'\n  \
     tapmap apply --bank gaussian:sigma=2 --pad reflect --stride 2 --out blur tile.tif\n  \
     tapmap apply --bank my-filters.toml --color rgb --act relu --pool max --pool-size 2 --out fm photos/\n  \
-    tapmap apply --bank sobel-x+sobel-y --white 4095 --combine gradient --drop-sources --threshold otsu --out edges captures/\n\n\
+    tapmap apply --bank sobel-x+sobel-y --white 4095 --combine gradient --drop-sources --threshold otsu --out edges captures/\n  \
+    tapmap apply --recipe kernels/line-a-edges.recipe.toml --follow --status-log runs/shift/status.jsonl --out runs/shift incoming/\n\n\
     Outputs mirror each input's path below its folder or pattern root:\n  \
     OUT/maps/P.npy (float32 C×H×W, numpy.load), OUT/views/P/NN-name.png, OUT/sheets/P.png,\n  \
     OUT/tiff/P/NN-name.tif, OUT/keys/P/NN-name.png, OUT/stats.csv, OUT/images.csv, OUT/manifest.json.";
@@ -69,6 +73,27 @@ pub struct ApplyArgs {
     /// indexed job (JOB_COMPLETION_INDEX) with N completions. Then `tapmap merge OUT`.
     #[arg(long, value_name = "K/N|auto|auto/N")]
     shard: Option<ShardSpec>,
+    /// After the inputs that are there, keep watching their folders and patterns
+    /// and process each new or changed image once it is complete; stop with
+    /// SIGINT/SIGTERM (Ctrl-C). Takes up its own earlier run like --resume.
+    #[arg(long, conflicts_with = "shard")]
+    follow: bool,
+    /// With --follow: look for changes every DURATION instead of listening for
+    /// the operating system's file events (network mounts), e.g. 2s.
+    #[arg(long, value_name = "DURATION", value_parser = parse_duration, requires = "follow")]
+    poll: Option<std::time::Duration>,
+    /// With --follow: a file is complete once its size and modification time stay
+    /// the same this long (a file closed after writing, or renamed into place, is
+    /// taken at once).
+    #[arg(long, value_name = "DURATION", value_parser = parse_duration, default_value = "3s", requires = "follow")]
+    settle: std::time::Duration,
+    /// With --follow: how often the status line is shown and logged.
+    #[arg(long, value_name = "DURATION", value_parser = parse_duration, default_value = "2s", requires = "follow")]
+    status_every: std::time::Duration,
+    /// With --follow: append the status as one JSON line per interval to FILE
+    /// (schema shared/schemas/follow-status.schema.json).
+    #[arg(long, value_name = "FILE", requires = "follow")]
+    status_log: Option<std::path::PathBuf>,
     /// At the end, print the run's summary as JSON on stdout (schema
     /// shared/schemas/summary.schema.json).
     #[arg(long)]
@@ -106,7 +131,20 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
         tell!("tapmap: warning: --view-depth 16 changes nothing without views or sheets in --save");
     }
     watch_stop_signals(&stop)?;
-    let summary = run_apply(&job, &Terminal::new(a.io.quiet, "images"))?;
+    let summary = if a.follow {
+        if a.status_every.is_zero() {
+            return Err(Error::usage("--status-every must be longer than zero"));
+        }
+        let opts = FollowOptions {
+            poll: a.poll.filter(|d| !d.is_zero()),
+            settle: a.settle,
+            status_every: a.status_every,
+            status_log: a.status_log.clone(),
+        };
+        run_follow(&job, &opts, &Terminal::following(a.io.quiet))?
+    } else {
+        run_apply(&job, &Terminal::new(a.io.quiet, "images"))?
+    };
     let signal = summary.stopped_by;
     for w in &summary.warnings {
         tell!("tapmap: warning: {w}");
@@ -117,6 +155,21 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
         if a.resume {
             extra += &format!(", {} taken from the earlier run", summary.resumed);
         }
+        if let Some(f) = &summary.follow {
+            extra += &format!(", {} arrived while following", f.arrived);
+            if !f.redone.is_empty() {
+                extra += &format!(" ({} changed and done again)", f.redone.len());
+            }
+            if let (Some(p50), Some(p99)) = (f.lag_p50_s, f.lag_p99_s) {
+                extra += &format!(", lag p50 {p50:.2} s p99 {p99:.2} s");
+            }
+            if f.left_waiting > 0 {
+                extra += &format!(
+                    ", {} still arriving at the stop (taken by the next start)",
+                    f.left_waiting
+                );
+            }
+        }
         if let Some(sig) = signal {
             extra += &format!(
                 ", stopped by signal {sig} with {} not started (finish with --resume)",
@@ -124,7 +177,8 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
             );
         }
         // A rate only for work done here, not for results taken over.
-        let rate = if worked > 0 && summary.seconds > 0.0 {
+        // Nor while following, where the time is mostly waiting for files.
+        let rate = if worked > 0 && summary.seconds > 0.0 && summary.follow.is_none() {
             format!(
                 " ({})",
                 super::rate_text(worked as f64 / summary.seconds, "images")
@@ -144,7 +198,7 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
     }
     if a.json {
         let s = &summary;
-        let json = serde_json::json!({
+        let mut json = serde_json::json!({
             "format": "tapmap-summary",
             "summary_version": 1,
             "processed": s.processed,
@@ -158,6 +212,9 @@ pub fn run(a: ApplyArgs) -> Result<i32, Error> {
             "tables_error": s.tables_error,
             "warnings": s.warnings,
         });
+        if let Some(f) = &s.follow {
+            json["follow"] = serde_json::to_value(f).expect("plain fields");
+        }
         say!("{json}\n");
     }
     if let Some(e) = &summary.tables_error {

@@ -286,6 +286,22 @@ pub fn parse_range(s: &str) -> Result<(f32, f32), String> {
     Ok((lo, hi))
 }
 
+/// A duration: a number of seconds (`3`, `0.5`) or with units (`500ms`,
+/// `2s`, `1m 30s`).
+pub fn parse_duration(s: &str) -> Result<std::time::Duration, String> {
+    let t = s.trim();
+    let d = match t.parse::<f64>() {
+        Ok(secs) if secs.is_finite() && secs >= 0.0 => std::time::Duration::from_secs_f64(secs),
+        Ok(_) => return Err(format!("duration '{s}' must be zero or more seconds")),
+        Err(_) => humantime::parse_duration(t)
+            .map_err(|e| format!("duration '{s}': {e}; give seconds (3, 0.5) or e.g. 500ms, 2s"))?,
+    };
+    if d > std::time::Duration::from_secs(86_400) {
+        return Err(format!("duration '{s}' is longer than a day"));
+    }
+    Ok(d)
+}
+
 pub fn parse_depth(s: &str) -> Result<u8, String> {
     match s {
         "8" => Ok(8),

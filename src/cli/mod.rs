@@ -268,6 +268,20 @@ impl Terminal {
         };
         Terminal { bar, quiet }
     }
+
+    /// For `apply --follow`: one status line, replaced at each interval, instead
+    /// of a bar towards a known total.
+    fn following(quiet: bool) -> Self {
+        let bar = if quiet {
+            ProgressBar::hidden()
+        } else {
+            let b = ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr());
+            b.set_style(ProgressStyle::with_template("{msg}").expect("valid template"));
+            b.set_message("following: listing the inputs");
+            b
+        };
+        Terminal { bar, quiet }
+    }
 }
 
 impl Observer for Terminal {
@@ -284,6 +298,9 @@ impl Observer for Terminal {
         if !self.quiet {
             self.bar.suspend(|| say!("{text}"));
         }
+    }
+    fn status(&self, line: &str) {
+        self.bar.set_message(line.to_string());
     }
     fn end(&self) {
         self.bar.finish_and_clear();

@@ -129,7 +129,7 @@ fn component_text(s: &std::ffi::OsStr) -> String {
     s.to_string_lossy().replace('\\', "\\\\")
 }
 
-fn has_image_extension(p: &Path) -> bool {
+pub(crate) fn has_image_extension(p: &Path) -> bool {
     p.extension()
         .and_then(|e| e.to_str())
         .is_some_and(|e| IMAGE_EXTENSIONS.iter().any(|x| x.eq_ignore_ascii_case(e)))
@@ -142,17 +142,17 @@ pub fn has_extension(p: &Path, ext: &str) -> bool {
         .is_some_and(|e| e.eq_ignore_ascii_case(ext))
 }
 
-fn is_npy(p: &Path) -> bool {
+pub(crate) fn is_npy(p: &Path) -> bool {
     has_extension(p, "npy")
 }
 
-fn is_pattern(s: &str) -> bool {
+pub(crate) fn is_pattern(s: &str) -> bool {
     s.contains(['*', '?', '['])
 }
 
 /// The fixed leading folders of a glob pattern (before the first component with a
 /// wildcard), or `.` when the pattern starts with one.
-fn pattern_root(pattern: &str) -> PathBuf {
+pub(crate) fn pattern_root(pattern: &str) -> PathBuf {
     let mut root = PathBuf::new();
     for c in Path::new(pattern).components() {
         let s = c.as_os_str().to_string_lossy();
@@ -186,7 +186,7 @@ fn absolute(p: &Path) -> PathBuf {
     out
 }
 
-struct Excluder {
+pub(crate) struct Excluder {
     lexical: PathBuf,
     canonical: Option<PathBuf>,
 }
@@ -215,7 +215,7 @@ pub fn is_run_folder(dir: &Path) -> bool {
 
 /// Whether a folder between `root` (not included: it was checked before) and
 /// the file `p` holds a tapmap run; `seen` remembers each folder's answer.
-fn below_run_folder(
+pub(crate) fn below_run_folder(
     p: &Path,
     root: &Path,
     seen: &mut std::collections::HashMap<PathBuf, bool>,
@@ -256,13 +256,13 @@ fn run_folder_above(path: &Path) -> Option<PathBuf> {
 }
 
 impl Excluder {
-    fn new(out_dir: &Path) -> Self {
+    pub(crate) fn new(out_dir: &Path) -> Self {
         Excluder {
             lexical: absolute(out_dir),
             canonical: out_dir.canonicalize().ok(),
         }
     }
-    fn excludes(&self, p: &Path) -> bool {
+    pub(crate) fn excludes(&self, p: &Path) -> bool {
         absolute(p).starts_with(&self.lexical)
             || self
                 .canonical
@@ -271,7 +271,7 @@ impl Excluder {
     }
 }
 
-fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>) {
+pub(crate) fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>) {
     let walker = walkdir::WalkDir::new(root)
         .follow_links(true)
         .sort_by_file_name();
@@ -331,7 +331,7 @@ fn walk_folder(root: &Path, base: &Path, ex: &Excluder, out: &mut Vec<InputItem>
 /// `p` relative to `root`, or `p`'s own plain components when it is not below it.
 /// Only plain names survive (no root, `..` or `.`), so an output path built from
 /// it always stays inside the output folder.
-fn rel_below(p: &Path, root: &Path) -> PathBuf {
+pub(crate) fn rel_below(p: &Path, root: &Path) -> PathBuf {
     let rel = p.strip_prefix(root).unwrap_or(p);
     let clean: PathBuf = rel
         .components()
@@ -361,6 +361,16 @@ pub fn path_order_key(rel: &str) -> Vec<&str> {
 /// earlier tapmap run, and inputs that would write the same output names (all
 /// of these listed at once).
 pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>, Error> {
+    list_inputs(args, out_dir, false)
+}
+
+/// [`expand_inputs`], where with `empty_ok` a folder or pattern that holds no
+/// image files yet is no error (a folder that is being followed fills later).
+pub fn list_inputs(
+    args: &[PathBuf],
+    out_dir: &Path,
+    empty_ok: bool,
+) -> Result<Vec<InputItem>, Error> {
     let ex = Excluder::new(out_dir);
     let mut missing = Vec::new();
     for arg in args {
@@ -438,7 +448,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
                     }
                 }
             }
-            if items.len() == before {
+            if items.len() == before && !empty_ok {
                 return Err(Error::usage(format!(
                     "pattern '{s}' matches no image files"
                 )));
@@ -446,7 +456,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
         } else if arg.is_dir() {
             let before = items.len();
             walk_folder(arg, arg, &ex, &mut items);
-            if items.len() == before {
+            if items.len() == before && !empty_ok {
                 return Err(Error::usage(format!(
                     "folder {} holds no image files ({})",
                     arg.display(),
@@ -465,7 +475,7 @@ pub fn expand_inputs(args: &[PathBuf], out_dir: &Path) -> Result<Vec<InputItem>,
             });
         }
     }
-    if items.is_empty() {
+    if items.is_empty() && !empty_ok {
         return Err(Error::usage("no input images given"));
     }
     items.sort_by(|a, b| {

@@ -69,6 +69,9 @@ pub struct Manifest {
     /// In a merged manifest: each shard's run.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub shards: Option<Vec<ShardRun>>,
+    /// With `apply --follow`: how the folder was followed and what arrived.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub follow: Option<FollowRecord>,
     /// Run-level files (the tables) with their sizes.
     pub files: Vec<FileRecord>,
     /// Per input: path, digest, outcome, files, views.
@@ -282,6 +285,36 @@ pub struct ListRecord {
     pub count: usize,
     /// SHA-256 over each input's relative path and where it was read from.
     pub sha256: String,
+}
+
+/// What a followed run (`apply --follow`) saw, from its start to its stop.
+/// Lags run from a file's arrival (the last change tapmap saw of it) to its
+/// journal entry (its outputs on disk); files that were there at the start
+/// are not counted in them.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FollowRecord {
+    /// `events` (the operating system's file events) or `poll`.
+    pub watch: String,
+    /// Polling interval in seconds, with `--poll`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub poll_s: Option<f64>,
+    /// Settle time in seconds.
+    pub settle_s: f64,
+    /// Files taken while following (arrived after the start, or changed).
+    pub arrived: usize,
+    /// Of these, files processed again because they changed after an earlier
+    /// result (their rows supersede the earlier ones).
+    pub redone: Vec<String>,
+    /// Median and 99th percentile of the lag, seconds (none when no file
+    /// arrived while following).
+    pub lag_p50_s: Option<f64>,
+    /// See `lag_p50_s`.
+    pub lag_p99_s: Option<f64>,
+    /// The largest backlog seen (files complete and waiting for a worker).
+    pub most_queued: usize,
+    /// Files still settling or queued when the follower stopped (taken by
+    /// the next run of the same command).
+    pub left_waiting: usize,
 }
 
 /// A stopped run.

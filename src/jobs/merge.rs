@@ -228,6 +228,7 @@ pub fn merge(out: &Path, command_line: Vec<String>) -> Result<MergeSummary, Erro
         shard: None,
         resumed: None,
         interrupted: None,
+        follow: None,
         shards: Some(runs),
         files: files.clone(),
         inputs: done.iter().map(|d| d.entry.clone()).collect(),

@@ -21,6 +21,7 @@
 
 pub mod apply;
 pub mod borders;
+pub mod follow;
 pub mod inputs;
 pub mod learn;
 pub mod manifest;
@@ -161,6 +162,8 @@ pub trait Observer: Sync {
     fn report(&self, _text: &str) {}
     /// The job has finished its inputs.
     fn end(&self) {}
+    /// A followed run's status, every interval (one line of text).
+    fn status(&self, _line: &str) {}
 }
 
 /// Ends one input of a study job: a failure is named with its file, shown

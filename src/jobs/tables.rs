@@ -43,9 +43,18 @@ pub fn optional_number(v: Option<f64>) -> String {
 
 /// CSV text: a header line, then the rows (RFC 4180 quoting by the csv crate).
 pub fn csv_bytes(header: &[&str], rows: impl IntoIterator<Item = Vec<String>>) -> Vec<u8> {
+    let mut bytes = csv_lines(std::iter::once(
+        header.iter().map(|h| h.to_string()).collect(),
+    ));
+    bytes.extend(csv_lines(rows));
+    bytes
+}
+
+/// CSV lines of `rows` without a header, as [`csv_bytes`] writes them: what
+/// a table that grows row by row appends.
+pub fn csv_lines(rows: impl IntoIterator<Item = Vec<String>>) -> Vec<u8> {
     let mut w = csv::Writer::from_writer(Vec::new());
     // Writing records into memory cannot fail.
-    w.write_record(header).expect("in memory");
     for r in rows {
         let fields: Vec<std::borrow::Cow<'_, str>> = r.iter().map(|f| visible(f)).collect();
         w.write_record(fields.iter().map(|f| f.as_bytes()))

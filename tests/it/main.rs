@@ -12,6 +12,7 @@ mod borders;
 mod cli;
 mod combine;
 mod engine_oracle;
+mod follow;
 mod fusion;
 mod identities;
 mod kernels;

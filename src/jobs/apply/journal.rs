@@ -145,6 +145,17 @@ impl Journal {
             .map_err(|e| Error::io(&self.path, e))
     }
 
+    /// Appends one finished input and waits until it is on the disk
+    /// (fdatasync), so that not even a power cut loses a result that was
+    /// reported done.
+    pub fn append_synced(&self, done: &Finished) -> Result<(), Error> {
+        let line = entry_line(&self.job, done);
+        let mut f = self.file.lock().unwrap_or_else(|e| e.into_inner());
+        f.write_all(line.as_bytes())
+            .and_then(|()| f.sync_data())
+            .map_err(|e| Error::io(&self.path, e))
+    }
+
     /// Replaces the journal with exactly `done`, in table order (atomically).
     pub fn rewrite(&self, done: &[Finished]) -> Result<(), Error> {
         let mut text = head_line();

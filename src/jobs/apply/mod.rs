@@ -23,34 +23,27 @@
 
 mod earlier;
 pub mod journal;
-mod outputs;
+pub(crate) mod outputs;
+pub(crate) mod session;
 
-use std::collections::HashMap;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
-use std::time::{Instant, SystemTime};
 
 use crate::digest::sha256_hex;
 use crate::engine::Engine;
 use crate::error::Error;
 use crate::jobs::inputs::{expand_inputs, list_digest, InputItem};
-use crate::jobs::manifest::{
-    recipe_record, views_record, write_manifest, FileRecord, Interrupted, JobRecord, ListRecord,
-    Manifest, SummaryRecord, MANIFEST_FORMAT, MANIFEST_VERSION,
-};
+use crate::jobs::manifest::{recipe_record, views_record, FollowRecord, JobRecord, ListRecord};
 use crate::jobs::shard::Shard;
-use crate::jobs::tables::{write_tables, Finished};
-use crate::jobs::{
-    for_each_parallel, make_out_dir, thread_pool, Observer, OutLock, Save, Stop, ViewOptions,
-};
+use crate::jobs::tables::Finished;
+use crate::jobs::{for_each_parallel, thread_pool, Observer, Save, Stop, ViewOptions};
 use crate::regions::{Connectivity, Threshold};
-use crate::render::colormap;
 use crate::stage::RecipeSpec;
 
-use crate::pipeline::PlanCache;
 pub use journal::{read_journal, JOURNAL};
-use outputs::{process, ImageContext};
+use outputs::process;
+use session::{Ending, Session};
 
 /// Everything an `apply` run needs, checked before any image is read.
 #[derive(Debug, Clone)]
@@ -109,6 +102,8 @@ pub struct Summary {
     pub tables_error: Option<String>,
     /// Things the run did otherwise than its options may suggest, each once.
     pub warnings: Vec<String>,
+    /// With `--follow`: what arrived and how fast it was done.
+    pub follow: Option<FollowRecord>,
     /// The folder the run wrote into.
     pub dir: PathBuf,
 }
@@ -195,29 +190,11 @@ pub fn run_apply(job: &ApplyJob, obs: &dyn Observer) -> Result<Summary, Error> {
     run_listed(job, items, listed, obs)
 }
 
-fn list_record(items: &[InputItem]) -> ListRecord {
+pub(crate) fn list_record(items: &[InputItem]) -> ListRecord {
     ListRecord {
         count: items.len(),
         sha256: list_digest(items),
     }
-}
-
-/// Whether an earlier result can stand for `item` (see the module header):
-/// it succeeded, every file it lists is there with its recorded size and
-/// modification time, and the input's bytes have the recorded digest.
-fn still_valid(prev: &Finished, item: &InputItem, dir: &Path, spec: &RecipeSpec) -> bool {
-    prev.ok()
-        && item.problem.is_none()
-        && prev
-            .entry
-            .outputs
-            .iter()
-            .all(|o| o.still(&dir.join(o.path_buf())))
-        && prev.image.sha256.is_some()
-        && crate::image_io::read_input(&item.source, &spec.input.limits)
-            .ok()
-            .map(|b| sha256_hex(&b))
-            == prev.image.sha256
 }
 
 /// Runs the job over inputs already listed (and sharded): what [`run_apply`] does
@@ -237,69 +214,25 @@ fn run_listed(
     listed: ListRecord,
     obs: &dyn Observer,
 ) -> Result<Summary, Error> {
-    let started = SystemTime::now();
-    let clock = Instant::now();
-    job.check()?;
     let pool = thread_pool(job.jobs)?;
-    let dir = job.run_dir();
-    make_out_dir(&dir)?;
-    tempfile::Builder::new()
-        .prefix(".tapmap-probe")
-        .tempfile_in(&dir)
-        .map(drop)
-        .map_err(|e| Error::io(&dir, e))?;
-    let _lock = OutLock::take(&dir)?;
-    earlier::remove_leftovers(&dir);
-    let recorded = earlier::recorded_files(&dir);
-    if !job.resume {
-        earlier::remove_recorded(&dir, &recorded);
-    }
-    let key = job.digest();
-    let journal_path = dir.join(JOURNAL);
-    let earlier: HashMap<String, Finished> = if job.resume {
-        read_journal(&journal_path, Some(&key))?
-            .into_iter()
-            .map(|f| (f.path().to_string(), f))
-            .collect()
-    } else {
-        HashMap::new()
-    };
-    let journal = journal::Journal::open(&dir, &key, job.resume)?;
-
-    let table = colormap::table();
-    let cyclic_table = colormap::cyclic_table();
-    let plans = PlanCache::default();
-    let warnings = Mutex::new(std::collections::BTreeSet::new());
-    let cx = ImageContext {
-        spec: &job.spec,
-        engine: job.engine,
-        save: job.save,
-        view: job.view,
-        threshold: job.threshold,
-        connectivity: job.connectivity,
-        inset: job.inset,
-        dir: &dir,
-        table: &table,
-        cyclic_table: &cyclic_table,
-        plans: &plans,
-        warnings: &warnings,
-    };
+    let run = Session::open(job, job.resume)?;
+    let cx = run.context();
     obs.begin(items.len());
     let results: Mutex<Vec<Option<Finished>>> = Mutex::new(vec![None; items.len()]);
     let resumed = AtomicUsize::new(0);
     let journal_error: Mutex<Option<Error>> = Mutex::new(None);
     for_each_parallel(&items, job.jobs, &job.stop, |i, item| {
-        let done = match earlier.get(&item.rel_string()) {
-            Some(prev) if still_valid(prev, item, &dir, &job.spec) => {
+        let done = match run.reusable(item) {
+            Some(prev) => {
                 resumed.fetch_add(1, Ordering::Relaxed);
                 prev.clone()
             }
-            _ => {
+            None => {
                 let done = pool.install(|| process(&cx, item));
                 if let Some(problem) = &done.image.error {
                     obs.input_failed(&Error::decode(&item.source, problem.clone()));
                 }
-                if let Err(e) = journal.append(&done) {
+                if let Err(e) = run.journal.append(&done) {
                     journal_error
                         .lock()
                         .unwrap_or_else(|p| p.into_inner())
@@ -321,80 +254,12 @@ fn run_listed(
     let all = results.into_inner().unwrap_or_else(|p| p.into_inner());
     let not_run = all.iter().filter(|r| r.is_none()).count();
     let done: Vec<Finished> = all.into_iter().flatten().collect();
-    let failed = done.iter().filter(|d| !d.ok()).count();
-    let resumed = resumed.into_inner();
-    let signal = job.stop.requested();
-    let summary = SummaryRecord {
-        inputs: done.len(),
-        processed: done.len() - failed,
-        failed,
-    };
-    // Every image's files and journal entry are in place: a failure from here
-    // on (a full disk) loses no result, and `--resume` writes the tables.
-    let finish = || -> Result<Vec<FileRecord>, Error> {
-        // The journal now holds exactly this run's results, in table order.
-        journal.rewrite(&done)?;
-        let mut files = write_tables(&dir, &done, job.save.stats)?;
-        if job.save.manifest {
-            let manifest = Manifest {
-                format: MANIFEST_FORMAT.into(),
-                manifest_version: MANIFEST_VERSION,
-                tool: "tapmap".into(),
-                version: env!("CARGO_PKG_VERSION").into(),
-                job: job.record(),
-                command_line: job.command_line.clone(),
-                started: Some(humantime::format_rfc3339_seconds(started).to_string()),
-                finished: Some(humantime::format_rfc3339_seconds(SystemTime::now()).to_string()),
-                seconds: Some(clock.elapsed().as_secs_f64()),
-                threads: Some(job.jobs),
-                summary,
-                listed: Some(listed),
-                shard: job.shard.map(|s| s.to_string()),
-                resumed: job.resume.then_some(resumed),
-                interrupted: (not_run > 0 || signal.is_some()).then_some(Interrupted {
-                    signal: signal.unwrap_or(0),
-                    not_run,
-                }),
-                shards: None,
-                files: files.clone(),
-                inputs: done.iter().map(|d| d.entry.clone()).collect(),
-            };
-            let bytes = write_manifest(&dir.join("manifest.json"), &manifest)?;
-            files.push(FileRecord {
-                path: "manifest.json".into(),
-                bytes,
-                modified: None,
-            });
-        }
-        Ok(files)
-    };
-    let (files, tables_error) = match finish() {
-        Ok(f) => (f, None),
-        Err(e) => (Vec::new(), Some(e.to_string())),
-    };
-    if job.resume && tables_error.is_none() {
-        // What the earlier records list and this run's results do not.
-        let now: std::collections::BTreeSet<&String> = files
-            .iter()
-            .chain(done.iter().flat_map(|d| d.entry.outputs.iter()))
-            .map(|f| &f.path)
-            .collect();
-        earlier::remove_recorded(&dir, recorded.iter().filter(|f| !now.contains(f)));
-    }
-    Ok(Summary {
-        processed: summary.processed,
-        failed,
-        files: files.len() + 1 + done.iter().map(|d| d.entry.outputs.len()).sum::<usize>(),
-        seconds: clock.elapsed().as_secs_f64(),
-        resumed,
+    let ending = Ending {
+        listed: Some(listed),
+        resumed: resumed.into_inner(),
         not_run,
-        stopped_by: signal,
-        tables_error,
-        warnings: warnings
-            .into_inner()
-            .unwrap_or_else(|p| p.into_inner())
-            .into_iter()
-            .collect(),
-        dir,
-    })
+        signal: job.stop.requested(),
+        follow: None,
+    };
+    Ok(run.finish(done, ending))
 }
