@@ -52,6 +52,10 @@ fn every_readme_command_runs_as_written_on_the_shipped_samples() {
         std::env::var("PATH").unwrap_or_default()
     );
     for c in &commands {
+        if c.contains("--follow") {
+            follow_example(c, t.path(), &path);
+            continue;
+        }
         let o = Command::new("bash")
             .arg("-c")
             .arg(c)
@@ -82,4 +86,66 @@ fn every_readme_command_runs_as_written_on_the_shipped_samples() {
     // The glob example matches the station-1 PNGs only (two; its third capture is a TIFF).
     let s1 = std::fs::read_to_string(t.path().join("runs/s1/images.csv")).unwrap();
     assert_eq!(s1.lines().count(), 1 + 2, "{s1}");
+}
+
+/// The follow example as the README tells it: the samples copied to the
+/// folder the line writes into, the follower started, one capture arriving
+/// by rename, then a stop by SIGTERM, which ends with exit 0.
+fn follow_example(c: &str, dir: &Path, path: &str) {
+    let incoming = dir.join("incoming/line-a");
+    for e in walkdir::WalkDir::new(dir.join("sample_data/line-a")).follow_links(true) {
+        let e = e.unwrap();
+        let rel = e
+            .path()
+            .strip_prefix(dir.join("sample_data/line-a"))
+            .unwrap();
+        if e.file_type().is_dir() {
+            std::fs::create_dir_all(incoming.join(rel)).unwrap();
+        } else {
+            std::fs::copy(e.path(), incoming.join(rel)).unwrap();
+        }
+    }
+    let mut child = Command::new("bash")
+        .arg("-c")
+        .arg(format!("exec {c}"))
+        .current_dir(dir)
+        .env("PATH", path)
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let out = dir.join(
+        c.split_whitespace()
+            .skip_while(|w| *w != "--out")
+            .nth(1)
+            .unwrap(),
+    );
+    let rows = || {
+        std::fs::read_to_string(out.join("images.csv"))
+            .map(|t| t.lines().count().saturating_sub(1))
+            .unwrap_or(0)
+    };
+    let wait = |n: usize| {
+        let start = std::time::Instant::now();
+        while rows() < n {
+            assert!(
+                start.elapsed() < std::time::Duration::from_secs(120),
+                "the follower did not take {n} captures"
+            );
+            std::thread::sleep(std::time::Duration::from_millis(100));
+        }
+    };
+    wait(7);
+    let s1 = incoming.join("s1-glaze");
+    let part = s1.join("tile-0101.png.part");
+    std::fs::copy(s1.join("tile-0001-crack.png"), &part).unwrap();
+    std::fs::rename(&part, s1.join("tile-0101.png")).unwrap();
+    wait(8);
+    // SAFETY: sending a signal to our own child process.
+    assert_eq!(unsafe { libc::kill(child.id() as i32, libc::SIGTERM) }, 0);
+    let status = child.wait().unwrap();
+    let mut err = String::new();
+    std::io::Read::read_to_string(&mut child.stderr.take().unwrap(), &mut err).unwrap();
+    assert_eq!(status.code(), Some(0), "{c}\n{err}");
+    assert!(err.contains("1 arrived while following"), "{err}");
+    assert!(out.join("manifest.json").is_file());
 }
