@@ -331,3 +331,105 @@ fn a_follower_killed_at_random_moments_loses_nothing_and_repeats_nothing() {
     batch(&reference, &input);
     same_outputs(&reference, &out);
 }
+
+#[test]
+fn polling_finds_files_where_no_events_come() {
+    let t = TempDir::new().unwrap();
+    let input = t.path().join("incoming");
+    std::fs::create_dir_all(&input).unwrap();
+    let out = t.path().join("follow");
+    let child = crate::common::tapmap_command()
+        .args(["apply", "--bank", "edges", "--white", "4095", "--jobs", "2"])
+        .args(["--follow", "--poll", "300ms", "--settle", "1s", "--out"])
+        .arg(&out)
+        .arg(&input)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    writer(input.clone(), 30, EVERY).join().unwrap();
+    wait_for(&out, Duration::from_secs(60), "all captures", |r| {
+        r.len() == 30
+    });
+    stop(child);
+    let m: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("manifest.json")).unwrap()).unwrap();
+    assert_eq!(m["follow"]["watch"], "poll");
+    assert_eq!(m["follow"]["poll_s"], 0.3);
+    let reference = t.path().join("batch");
+    batch(&reference, &input);
+    same_outputs(&reference, &out);
+}
+
+#[test]
+fn a_second_signal_stops_at_once_and_a_restart_finishes() {
+    let t = TempDir::new().unwrap();
+    let input = t.path().join("incoming");
+    let out = t.path().join("follow");
+    let child = follower(&out, &input_made(&input));
+    // Forty captures arrive at once, by rename; two signals while they are
+    // being processed.
+    let staging = t.path().join("staging");
+    std::fs::create_dir_all(&staging).unwrap();
+    for i in 0..40 {
+        let img = ImageBuffer::from_fn(640, 480, |x, y| {
+            Luma([((x * 31 + y * 17 + i * 7 + (x ^ y) % 13) % 4096) as u16])
+        });
+        let name = format!("big-{i:03}.png");
+        img.save(staging.join(&name)).unwrap();
+    }
+    for i in 0..40 {
+        let name = format!("big-{i:03}.png");
+        std::fs::rename(staging.join(&name), input.join(&name)).unwrap();
+    }
+    wait_for(&out, Duration::from_secs(60), "a first result", |r| {
+        !r.is_empty()
+    });
+    for _ in 0..2 {
+        // SAFETY: sending a signal to our own child process.
+        assert_eq!(unsafe { libc::kill(child.id() as i32, libc::SIGTERM) }, 0);
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    let r = child.wait_with_output().unwrap();
+    // Stopped at once (128 + SIGTERM), unless the first signal's orderly end
+    // came first (then 0).
+    let code = r.status.code();
+    assert!(code == Some(143) || code == Some(0), "{code:?}");
+    let journal = std::fs::read_to_string(out.join("journal.jsonl")).unwrap();
+    for line in journal.lines() {
+        serde_json::from_str::<serde_json::Value>(line).expect("whole journal lines");
+    }
+    // The next start finishes the job: one row each, as a batch writes them.
+    let child = follower(&out, &input);
+    wait_for(&out, Duration::from_secs(60), "all captures", |r| {
+        r.len() == 40
+    });
+    // SAFETY: sending a signal to our own child process.
+    assert_eq!(unsafe { libc::kill(child.id() as i32, libc::SIGTERM) }, 0);
+    let r = child.wait_with_output().unwrap();
+    assert_eq!(
+        r.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&r.stderr)
+    );
+    assert!(rows(&out).values().all(|s| s.len() == 1));
+    let reference = t.path().join("batch");
+    let b = crate::common::tapmap_command()
+        .args([
+            "apply", "--bank", "edges", "--white", "4095", "--jobs", "2", "-q",
+        ])
+        .arg("--out")
+        .arg(&reference)
+        .arg(&input)
+        .output()
+        .unwrap();
+    assert!(b.status.success());
+    same_outputs(&reference, &out);
+}
+
+/// An empty folder to follow.
+fn input_made(dir: &Path) -> PathBuf {
+    std::fs::create_dir_all(dir).unwrap();
+    dir.to_path_buf()
+}
