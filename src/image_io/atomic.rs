@@ -2,6 +2,7 @@
 //! final folder and renamed into place (a rename within one folder is atomic on
 //! POSIX file systems).
 
+use std::fs::File;
 use std::io::{BufWriter, Write};
 use std::path::Path;
 
@@ -14,6 +15,18 @@ pub fn write_atomic(
     path: &Path,
     fill: impl FnOnce(&mut dyn Write) -> std::io::Result<()>,
 ) -> Result<(), Error> {
+    write_atomic_file(path, |f| {
+        let mut w = BufWriter::new(f);
+        fill(&mut w)?;
+        w.flush()
+    })
+}
+
+/// As [`write_atomic`], with the temporary file itself to write to.
+pub fn write_atomic_file(
+    path: &Path,
+    fill: impl FnOnce(&File) -> std::io::Result<()>,
+) -> Result<(), Error> {
     let dir = path
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
@@ -24,11 +37,7 @@ pub fn write_atomic(
         .suffix(".part")
         .tempfile_in(dir)
         .map_err(|e| Error::io(dir, e))?;
-    {
-        let mut w = BufWriter::new(tmp.as_file());
-        fill(&mut w).map_err(|e| Error::io(path, e))?;
-        w.flush().map_err(|e| Error::io(path, e))?;
-    }
+    fill(tmp.as_file()).map_err(|e| Error::io(path, e))?;
     // Temporary files are created private (0600); outputs are ordinary files.
     #[cfg(unix)]
     {

@@ -3,6 +3,7 @@
 //! maps as `.npy` and float TIFF, every file whole or not at all.
 
 pub mod atomic;
+mod bulk;
 pub mod convert;
 mod exif;
 mod jpeg;
