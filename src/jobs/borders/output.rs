@@ -338,18 +338,25 @@ fn with_caption(map: GrayImage, k: usize, ch: &ChannelStudy, mode: PadMode, hi: 
         .max(6 + text_width(&first))
         .max(40 + text_width(&measured) + text_width(&predicted));
     let height = map.height() + 6 + 2 * LINE + 12;
-    let mut text = RgbImage::new(width, height);
+    // The text is drawn in colour on a strip as wide as the picture and only
+    // as tall as the caption, then taken into the view's greys.
+    let mut text = RgbImage::new(width, height - map.height());
     let ink = Rgb([255, 255, 255]);
     let y0 = map.height() + 3;
-    draw_text(&mut text, 4, y0, &first, ink);
-    draw_text(&mut text, 18, y0 + LINE, &measured, ink);
+    draw_text(&mut text, 4, 3, &first, ink);
+    draw_text(&mut text, 18, 3 + LINE, &measured, ink);
     let x2 = 18 + text_width(&measured) + 22;
-    draw_text(&mut text, x2, y0 + LINE, &predicted, ink);
-    let mut out = GrayImage::from_fn(width, height, |x, y| {
-        let v = u32::from(text.get_pixel(x, y).0[0]);
-        Luma([((v * GREYS as u32 + 127) / 255) as u8])
-    });
+    draw_text(&mut text, x2, 3 + LINE, &predicted, ink);
+    let mut out = GrayImage::new(width, height);
     image::imageops::replace(&mut out, &map, 0, 0);
+    for (x, y, p) in text.enumerate_pixels() {
+        let v = u32::from(p.0[0]);
+        out.put_pixel(
+            x,
+            map.height() + y,
+            Luma([((v * GREYS as u32 + 127) / 255) as u8]),
+        );
+    }
     // The grey scale itself: 0 at the left, the largest difference at the right.
     let bar_y = height - 10;
     let bar_w = (width - 8).min(256);
