@@ -19,7 +19,7 @@ use crate::image_io::loaded::{white_level, ImageMeta, LoadedImage, ReadOptions};
 pub fn write_npy(path: &Path, maps: ArrayView3<f32>) -> Result<(), Error> {
     match maps.as_slice() {
         Some(samples) if cfg!(target_endian = "little") => {
-            let header = npy_header_f32(maps.shape());
+            let header = npy_header_f32(maps.dim());
             // SAFETY: any f32 is 4 initialised bytes; the byte view borrows
             // `samples` and has exactly its length in bytes.
             let bytes = unsafe {
@@ -39,17 +39,12 @@ pub fn write_npy(path: &Path, maps: ArrayView3<f32>) -> Result<(), Error> {
     }
 }
 
-/// The `.npy` version 1.0 header of a little-endian f32 array in C order
+/// The `.npy` version 1.0 header of a C × H × W little-endian f32 array in C order
 /// (NumPy's "NEP 1: A simple file format for NumPy arrays" and the
 /// `numpy.lib.format` documentation): magic, version, header length, then the
 /// dictionary padded with spaces and a newline to a multiple of 64 bytes.
-fn npy_header_f32(shape: &[usize]) -> Vec<u8> {
-    let dims: Vec<String> = shape.iter().map(|d| d.to_string()).collect();
-    let tuple = match dims.len() {
-        1 => format!("({},)", dims[0]),
-        _ => format!("({})", dims.join(", ")),
-    };
-    let dict = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': {tuple}}}");
+fn npy_header_f32((c, h, w): (usize, usize, usize)) -> Vec<u8> {
+    let dict = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({c}, {h}, {w})}}");
     let unpadded = 10 + dict.len() + 1;
     let total = unpadded.div_ceil(64) * 64;
     let len = (total - 10) as u16;
@@ -137,7 +132,7 @@ mod tests {
     fn the_header_is_the_one_ndarray_npy_writes() {
         // ndarray-npy follows NEP 1 (version 1.0 header padded to 64 bytes).
         for shape in [(5, 1944, 2592), (1, 1, 1), (3, 7, 11), (64, 100_000, 3)] {
-            let h = npy_header_f32(&[shape.0, shape.1, shape.2]);
+            let h = npy_header_f32(shape);
             assert_eq!(h.len() % 64, 0, "{shape:?}");
             assert_eq!(&h[..8], b"\x93NUMPY\x01\x00");
             assert_eq!(u16::from_le_bytes([h[8], h[9]]) as usize, h.len() - 10);
@@ -146,7 +141,7 @@ mod tests {
         for shape in [(1, 1, 1), (3, 7, 11), (2, 40, 31)] {
             let a = Array3::<f32>::zeros(shape);
             let r = reference(a.view());
-            let h = npy_header_f32(a.shape());
+            let h = npy_header_f32(a.dim());
             assert_eq!(&r[..h.len()], &h[..], "{shape:?}");
         }
     }
